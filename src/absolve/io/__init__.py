@@ -1,0 +1,1 @@
+"""Every file format absolve reads or writes lives in this package, and only here."""

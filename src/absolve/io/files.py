@@ -1,0 +1,77 @@
+"""Writing result files whole or not at all, and never over results without permission."""
+
+from __future__ import annotations
+
+import hashlib
+import os
+import tempfile
+from collections.abc import Mapping
+from pathlib import Path
+
+from ..errors import AbsolveError
+
+__all__ = ["atomic_write", "check_writable", "file_sha256", "write_all"]
+
+
+def file_sha256(path: str | os.PathLike[str]) -> str:
+    """SHA-256 hex digest of a file's bytes, for provenance records."""
+    digest = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def check_writable(paths: list[Path], *, force: bool) -> None:
+    """Refuse to go on when any of ``paths`` exists and ``force`` is off.
+
+    Call this before any computation so that a refused run costs nothing.
+    """
+    if force:
+        return
+    existing = [path for path in paths if path.exists()]
+    if existing:
+        raise AbsolveError(
+            f"{existing[0]} already exists",
+            fix="choose another output, or pass --force to replace it",
+        )
+
+
+def atomic_write(path: str | os.PathLike[str], content: str | bytes) -> None:
+    """Write ``content`` to ``path`` through a temporary file and a rename.
+
+    Readers see the old file or the new one, never half of one.
+    """
+    target = Path(path)
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        data = content.encode("utf-8") if isinstance(content, str) else content
+        handle, temporary = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
+    except OSError as error:
+        raise AbsolveError(f"cannot write {target}: {error.strerror}", fix="check the folder exists and is writable") from None
+    try:
+        with os.fdopen(handle, "wb") as stream:
+            stream.write(data)
+        os.replace(temporary, target)
+    except BaseException:
+        Path(temporary).unlink(missing_ok=True)
+        raise
+
+
+def write_all(files: Mapping[Path, str | bytes], *, force: bool) -> None:
+    """Write several files, each atomically, after checking none would be overwritten unasked.
+
+    The contents are all prepared before this is called, so a failure in the
+    computation leaves no file behind.
+    """
+    check_writable(list(files), force=force)
+    written: list[Path] = []
+    try:
+        for path, content in files.items():
+            atomic_write(path, content)
+            written.append(path)
+    except BaseException:
+        if not force:
+            for path in written:
+                path.unlink(missing_ok=True)
+        raise
