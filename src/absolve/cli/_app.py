@@ -12,11 +12,15 @@ from __future__ import annotations
 import sys
 from collections.abc import Sequence
 
-import click
 import typer
 
 from .. import __version__
 from ..errors import AbsolveError
+
+try:  # recent typer carries its own copy of click
+    from typer._click.exceptions import ClickException, UsageError
+except ImportError:  # pragma: no cover - older typer depends on click itself
+    from click.exceptions import ClickException, UsageError  # type: ignore[assignment]
 
 app = typer.Typer(
     name="absolve",
@@ -58,14 +62,17 @@ def main(argv: Sequence[str] | None = None) -> int:
         result = command.main(list(argv) if argv is not None else sys.argv[1:], prog_name="absolve", standalone_mode=False)
     except AbsolveError as error:
         return fail(error)
-    except click.exceptions.Exit as done:
+    except typer.Exit as done:
         return int(done.exit_code)
-    except click.UsageError as error:
+    except UsageError as error:
+        if type(error).__name__ == "NoArgsIsHelpError":  # bare 'absolve': show the help, not an error
+            print(error.format_message())
+            return 0
         hint = f"run 'absolve {error.ctx.info_name} --help'" if error.ctx and error.ctx.parent else "run 'absolve --help'"
         return fail(f"{error.format_message()} — {hint}")
-    except click.ClickException as error:
+    except ClickException as error:
         return fail(error.format_message())
-    except (click.Abort, KeyboardInterrupt):
+    except (typer.Abort, KeyboardInterrupt):
         print("error: interrupted — nothing was written", file=sys.stderr)
         return 130
     except BrokenPipeError:

@@ -1,0 +1,423 @@
+"""From standards to a reference library: absorptivity spectra, linearity audit, working range, noise model.
+
+At every wavelength the standards' absorbances are regressed on
+``path_length x concentration`` of each component plus an intercept (the
+blank level), by ordinary least squares: for pure standards this is the
+slope of each component's calibration line, for mixed standards the
+multi-component regression. The slope is the absorptivity, with its standard
+error from the residual scatter.
+
+Stray light and other non-idealities bend the response at high absorbance.
+The working range is found by fitting the low-absorbance points, following
+the relative deviation of the standards from that line as the predicted
+absorbance grows, and stopping where the median deviation leaves the line by
+more than ``linearity_tolerance`` (default 1 %, common practice, no source);
+points above it do not enter the fit, and quantification later excludes
+sample points above it.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from numpy.typing import ArrayLike, NDArray
+from scipy import optimize, stats
+
+from .errors import AbsolveError
+from .library import ComponentCalibration, NoiseModel, ReferenceLibrary
+from .spectra import Spectra
+
+__all__ = ["Calibration", "calibrate"]
+
+_MIN_LEVELS_ADVISED = 5  # fewer levels cannot show curvature reliably (common practice, no source)
+_SAFE_START = 0.8  # absorbance below which stray light is negligible on ordinary instruments (common practice, no source)
+_DEVIATION_FLOOR = 0.1  # absorbance below which relative deviations say nothing about linearity
+
+
+@dataclass(frozen=True)
+class _Fit:
+    """Per-wavelength least-squares fit of the standards."""
+
+    coefficients: NDArray[np.float64]  # (p, n_wl), last row the intercept
+    std_error: NDArray[np.float64]  # (p, n_wl)
+    residual_dof: NDArray[np.int64]  # (n_wl,)
+    residuals: NDArray[np.float64]  # (n_std, n_wl), NaN where not used
+    leverage: NDArray[np.float64]  # (n_std, n_wl), NaN where not used
+    predicted: NDArray[np.float64]  # (n_std, n_wl) for every standard
+
+
+@dataclass
+class Calibration:
+    """Turn standards into a :class:`~absolve.library.ReferenceLibrary` (estimator-like).
+
+    Parameters
+    ----------
+    unit : str
+        Concentration unit of the standards (and of the library).
+    linearity_tolerance : float
+        Relative departure from the line that ends the working range.
+    ceiling : float
+        Measured absorbance above which no standard point is trusted at all.
+    detect_working_range : bool
+        Find where the standards leave the line and exclude what lies above it.
+
+    Attributes
+    ----------
+    library_ : ReferenceLibrary
+        The fitted library.
+    linear_limit_ : float or None
+        Measured absorbance above which the standards leave the line (None: they never did).
+    """
+
+    unit: str
+    linearity_tolerance: float = 0.01
+    ceiling: float = 3.0
+    detect_working_range: bool = True
+    library_: ReferenceLibrary = field(init=False, repr=False)
+    linear_limit_: float | None = field(init=False, default=None)
+
+    def fit(
+        self,
+        standards: Spectra,
+        concentrations: ArrayLike,
+        components: Sequence[str],
+        *,
+        path_lengths: ArrayLike | None = None,
+        molar_masses: Mapping[str, float] | None = None,
+        provenance: Mapping[str, Any] | None = None,
+    ) -> Calibration:
+        """Fit absorptivities from standards.
+
+        Parameters
+        ----------
+        standards : Spectra
+            Standard scans (converted to absorbance here).
+        concentrations : array_like, shape (n_standards, n_components)
+            Concentration of each component in each scanned solution, in ``unit``
+            (already divided by any dilution).
+        components : sequence of str
+            Component names, in column order.
+        path_lengths : array_like, shape (n_standards,), optional
+            Cell path length of each standard in cm (default 1).
+        """
+        if not 0 < self.linearity_tolerance < 0.5:
+            raise AbsolveError(f"The 'linearity_tolerance' must lie in (0, 0.5); got {self.linearity_tolerance!r}.")
+        scans = standards.to_absorbance()
+        conc = np.atleast_2d(np.asarray(concentrations, dtype=np.float64))
+        names = tuple(components)
+        n_std = scans.n_scans
+        if conc.shape != (n_std, len(names)):
+            raise AbsolveError(f"concentrations of shape {conc.shape} do not match {n_std} standards x {len(names)} components")
+        paths = np.ones(n_std) if path_lengths is None else np.asarray(path_lengths, dtype=np.float64).reshape(-1)
+        if paths.shape != (n_std,) or np.any(~np.isfinite(paths)) or np.any(paths <= 0):
+            raise AbsolveError("path lengths must be positive numbers, one per standard", fix="check the path_length_cm column")
+        design = np.column_stack([conc * paths[:, None], np.ones(n_std)])
+        _check_design(design, conc, names)
+        absorbance = scans.values
+        trusted = scans.usable & (absorbance <= self.ceiling)
+        fit = _fit_per_wavelength(design, absorbance, trusted)
+        limits: dict[int, float | None] = {}
+        limit: float | None = None
+        if self.detect_working_range:
+            # Start from the low-absorbance points, where the law holds on any
+            # instrument, so that bent high points cannot tilt the reference line.
+            fit = _fit_per_wavelength(design, absorbance, trusted & (absorbance <= _SAFE_START))
+            for _ in range(6):
+                limits = {k: _departure(fit, absorbance, trusted, conc[:, k] > 0, self.linearity_tolerance) for k in range(len(names))}
+                found = [value for value in limits.values() if value is not None]
+                new_limit = min(found) if found else None
+                mask = trusted if new_limit is None else trusted & (absorbance <= new_limit)
+                fit = _fit_per_wavelength(design, absorbance, mask)
+                if new_limit == limit:
+                    break
+                limit = new_limit
+        used = trusted if limit is None else trusted & (absorbance <= limit)
+        noise = _noise_model(fit, scans.wavelengths)
+        self.linear_limit_ = limit
+        highest = float(np.max(np.where(used, absorbance, -np.inf)))
+        details = tuple(
+            _audit(
+                k, names, conc, paths, absorbance, used, fit, scans.wavelengths,
+                molar_mass=(molar_masses or {}).get(names[k]), limit=limits.get(k),
+            )
+            for k in range(len(names))
+        )
+        self.library_ = ReferenceLibrary(
+            wavelengths=scans.wavelengths,
+            absorptivity=fit.coefficients[:-1],
+            std_error=fit.std_error[:-1],
+            unit=self.unit,
+            components=details,
+            linear_limit_absorbance=limit if limit is not None else highest,
+            noise=noise,
+            residual_dof=int(np.median(fit.residual_dof)),
+            provenance=dict(provenance or {}),
+        )
+        return self
+
+
+def calibrate(
+    standards: Spectra,
+    concentrations: ArrayLike,
+    components: Sequence[str],
+    unit: str,
+    *,
+    path_lengths: ArrayLike | None = None,
+    molar_masses: Mapping[str, float] | None = None,
+    linearity_tolerance: float = 0.01,
+    provenance: Mapping[str, Any] | None = None,
+) -> ReferenceLibrary:
+    """Build a reference library from standards (see :class:`Calibration`).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from absolve import Spectra
+    >>> grid = np.arange(400.0, 410.0)
+    >>> levels = np.array([[0.0], [1.0], [2.0], [3.0], [4.0], [5.0]])
+    >>> scans = Spectra(grid, levels * np.linspace(0.1, 0.2, 10), [f"s{i}" for i in range(6)])
+    >>> library = calibrate(scans, levels, ["dye"], "mg/L")
+    >>> round(float(library.absorptivity[0, -1]), 6)
+    0.2
+    """
+    return (
+        Calibration(unit=unit, linearity_tolerance=linearity_tolerance)
+        .fit(standards, concentrations, components, path_lengths=path_lengths, molar_masses=molar_masses, provenance=provenance)
+        .library_
+    )
+
+
+def _check_design(design: NDArray[np.float64], conc: NDArray[np.float64], names: tuple[str, ...]) -> None:
+    for k, name in enumerate(names):
+        levels = np.unique(conc[:, k][conc[:, k] > 0])
+        if levels.size == 0:
+            raise AbsolveError(f"no standard contains {name!r}", fix="add standards of it, or drop it from the table")
+        if np.unique(conc[:, k]).size < 2:
+            raise AbsolveError(
+                f"{name!r} appears at a single concentration level",
+                fix="a calibration line needs at least two levels (five or more advised)",
+            )
+    if np.linalg.matrix_rank(design) < design.shape[1]:
+        raise AbsolveError(
+            "the standards cannot separate the components (their concentrations are proportional to each other)",
+            fix="add pure standards or mixtures with varied proportions",
+        )
+    if design.shape[0] <= design.shape[1]:
+        raise AbsolveError(
+            f"{design.shape[0]} standards for {design.shape[1] - 1} components and a blank level leave no degrees of freedom",
+            fix="measure more standards (five levels per component advised)",
+        )
+
+
+def _fit_per_wavelength(design: NDArray[np.float64], absorbance: NDArray[np.float64], mask: NDArray[np.bool_]) -> _Fit:
+    """Least squares at every wavelength, grouping wavelengths that share the same usable standards."""
+    n_std, n_wl = absorbance.shape
+    p = design.shape[1]
+    coefficients = np.full((p, n_wl), np.nan)
+    std_error = np.full((p, n_wl), np.nan)
+    dof = np.zeros(n_wl, dtype=np.int64)
+    residuals = np.full((n_std, n_wl), np.nan)
+    leverage = np.full((n_std, n_wl), np.nan)
+    patterns, groups = np.unique(mask.T, axis=0, return_inverse=True)
+    for index, rows in enumerate(patterns):
+        columns = np.flatnonzero(groups.reshape(-1) == index)
+        sub = design[rows]
+        if rows.sum() <= p or np.linalg.matrix_rank(sub) < p:
+            rows = np.isfinite(absorbance[:, columns]).all(axis=1)  # too few trusted points: use every finite one
+            sub = design[rows]
+            if rows.sum() <= p or np.linalg.matrix_rank(sub) < p:
+                raise AbsolveError(
+                    "too few usable standards at some wavelengths to separate the components",
+                    fix="add lower-concentration standards, or restrict the wavelength range",
+                )
+        y = absorbance[np.ix_(rows, columns)]
+        inverse_gram = np.linalg.inv(sub.T @ sub)
+        beta = inverse_gram @ sub.T @ y
+        resid = y - sub @ beta
+        n_dof = int(rows.sum()) - p
+        variance = np.sum(resid**2, axis=0) / n_dof
+        coefficients[:, columns] = beta
+        std_error[:, columns] = np.sqrt(np.outer(np.diag(inverse_gram), variance))
+        dof[columns] = n_dof
+        residuals[np.ix_(rows, columns)] = resid
+        hat = np.einsum("ij,jk,ik->i", sub, inverse_gram, sub)
+        leverage[np.ix_(rows, columns)] = hat[:, None]
+    predicted = design @ coefficients
+    return _Fit(coefficients, std_error, dof, residuals, leverage, predicted)
+
+
+def _departure(
+    fit: _Fit, absorbance: NDArray[np.float64], trusted: NDArray[np.bool_], holds: NDArray[np.bool_], tolerance: float
+) -> float | None:
+    """Measured absorbance where standards holding a component leave the line, or None.
+
+    Points are ordered by predicted absorbance and pooled into bins; the first
+    bin whose median deviation falls below ``-tolerance`` times its absorbance,
+    by more than the scatter of the standards' own baseline offsets, ends the
+    working range.
+    """
+    rows = holds[:, None] & trusted & (fit.predicted > _DEVIATION_FLOOR)
+    if rows.sum() < 40:
+        return None
+    # Each standard's own baseline offset (its median residual where it absorbs
+    # little) is removed so that cuvette mismatch is not read as curvature.
+    quiet = np.isfinite(fit.residuals) & (np.abs(fit.predicted) < 0.3)
+    offsets = np.array([np.median(fit.residuals[i, quiet[i]]) if quiet[i].sum() >= 5 else 0.0 for i in range(quiet.shape[0])])
+    predicted = fit.predicted[rows]
+    measured = absorbance[rows]
+    deviation = measured - predicted - np.broadcast_to(offsets[:, None], rows.shape)[rows]
+    order = np.argsort(predicted)
+    predicted, measured, deviation = predicted[order], measured[order], deviation[order]
+    chunks = np.array_split(np.arange(predicted.size), min(40, predicted.size // 20))
+    departed = [float(np.median(deviation[c])) < -tolerance * float(np.median(predicted[c])) for c in chunks]
+    # Stray light bends the response more the higher the absorbance, so the
+    # range ends where every bin from there up has left the line; an isolated
+    # low bin below the line is noise, not the end of the range.
+    if not departed[-1]:
+        return None
+    first = len(departed) - 1
+    while first > 0 and departed[first - 1]:
+        first -= 1
+    start = chunks[first][0]
+    below = measured[:start]
+    return float(below.max()) if below.size else float(measured[start])
+
+
+def _noise_model(fit: _Fit, wavelengths: NDArray[np.float64]) -> NoiseModel | None:
+    """Noise level, growth with absorbance and correlation length from the standards' residuals.
+
+    Each standard's mean residual (its cuvette or baseline offset, which the
+    quantification baseline absorbs) is removed first; squared residuals are
+    corrected for leverage, E[r^2] = sigma^2 (1 - h).
+    """
+    residuals = fit.residuals
+    usable = np.isfinite(residuals)
+    if usable.sum() < 20:
+        return None
+    centred = residuals - np.nanmean(residuals, axis=1, keepdims=True)
+    scaled_sq = centred**2 / np.clip(1.0 - fit.leverage, 0.05, None)
+    level = np.abs(fit.predicted)
+    x, y = level[usable], scaled_sq[usable]
+    order = np.argsort(x)
+    chunks = np.array_split(order, max(1, min(30, order.size // 30)))
+    bin_level = np.array([np.mean(x[c] ** 2) for c in chunks])
+    bin_variance = np.array([np.mean(y[c]) for c in chunks])
+    terms, _ = optimize.nnls(np.column_stack([np.ones_like(bin_level), bin_level]), bin_variance)
+    floor, proportional = float(np.sqrt(terms[0])), float(np.sqrt(terms[1]))
+    if floor == 0 and proportional == 0:
+        return None
+    sd = np.sqrt(floor**2 + (proportional * level) ** 2)
+    standardised = np.where(usable, centred / np.where(sd > 0, sd, 1.0), np.nan)
+    lagged = standardised[:, 1:] * standardised[:, :-1]
+    both = np.isfinite(lagged)
+    numerator = np.sum(np.where(both, lagged, 0.0))
+    denominator = np.sqrt(
+        np.sum(np.where(both, standardised[:, 1:] ** 2, 0.0)) * np.sum(np.where(both, standardised[:, :-1] ** 2, 0.0))
+    )
+    rho = float(numerator / denominator) if denominator > 0 else 0.0
+    step = float(np.median(np.diff(wavelengths)))
+    length = 0.0 if rho <= 0.01 else -step / np.log(min(rho, 0.999))
+    return NoiseModel(floor=floor, proportional=proportional, correlation_length_nm=float(length))
+
+
+def _audit(
+    k: int,
+    names: tuple[str, ...],
+    conc: NDArray[np.float64],
+    paths: NDArray[np.float64],
+    absorbance: NDArray[np.float64],
+    used: NDArray[np.bool_],
+    fit: _Fit,
+    wavelengths: NDArray[np.float64],
+    *,
+    molar_mass: float | None,
+    limit: float | None,
+) -> ComponentCalibration:
+    """Linearity audit of one component at its absorptivity peak."""
+    peak = int(np.nanargmax(fit.coefficients[k]))
+    rows = used[:, peak]
+    holds = conc[:, k] > 0
+    levels_present = np.unique(conc[rows & holds, k])
+    warnings: list[str] = []
+    if levels_present.size < _MIN_LEVELS_ADVISED:
+        warnings.append(f"only {levels_present.size} concentration levels inside the working range; 5 or more are advised")
+    design = np.column_stack([conc * paths[:, None], np.ones(conc.shape[0])])[rows]
+    y = absorbance[rows, peak]
+    p = design.shape[1]
+    n = y.size
+    beta, *_ = np.linalg.lstsq(design, y, rcond=None)
+    resid = y - design @ beta
+    dof = n - p
+    rss = float(resid @ resid)
+    tss = float(np.sum((y - y.mean()) ** 2))
+    r_squared = 1.0 - rss / tss if tss > 0 else None
+    intercept = float(beta[-1])
+    intercept_se = intercept_p = curvature_p = lack_of_fit_p = None
+    if dof > 0:
+        sigma2 = rss / dof
+        inverse_gram = np.linalg.pinv(design.T @ design)
+        intercept_se = float(np.sqrt(sigma2 * inverse_gram[-1, -1]))
+        if intercept_se > 0:
+            intercept_p = float(2 * stats.t.sf(abs(intercept) / intercept_se, dof))
+        curvature_p = _curvature_p(design, y, k)
+        lack_of_fit_p = _lack_of_fit_p(design, resid, dof)
+    if intercept_p is not None and intercept_p < 0.01:
+        warnings.append(f"intercept {intercept:+.4f} differs from zero (p = {intercept_p:.2g}): check the blank and baseline")
+    if curvature_p is not None and curvature_p < 0.01:
+        warnings.append(f"the response bends inside the working range (curvature p = {curvature_p:.2g})")
+    if lack_of_fit_p is not None and lack_of_fit_p < 0.01:
+        warnings.append(f"replicates show lack of fit (p = {lack_of_fit_p:.2g})")
+    if limit is not None:
+        warnings.append(f"standards leave the line above absorbance {limit:.3f}; points above it are not used")
+    chosen = conc[holds, k]
+    return ComponentCalibration(
+        name=names[k],
+        molar_mass=molar_mass,
+        peak_wavelength_nm=float(wavelengths[peak]),
+        levels=int(np.unique(chosen).size),
+        concentration_range=(float(chosen.min()), float(chosen.max())),
+        r_squared=r_squared,
+        intercept=intercept,
+        intercept_se=intercept_se,
+        intercept_p=intercept_p,
+        curvature_p=curvature_p,
+        lack_of_fit_p=lack_of_fit_p,
+        linear_limit_absorbance=limit,
+        warnings=tuple(warnings),
+    )
+
+
+def _curvature_p(design: NDArray[np.float64], y: NDArray[np.float64], k: int) -> float | None:
+    """p-value of a quadratic term in component ``k`` (t-test of the added column)."""
+    extended = np.column_stack([design, design[:, k] ** 2])
+    dof = y.size - extended.shape[1]
+    if dof <= 0 or np.linalg.matrix_rank(extended) < extended.shape[1]:
+        return None
+    beta, *_ = np.linalg.lstsq(extended, y, rcond=None)
+    resid = y - extended @ beta
+    sigma2 = float(resid @ resid) / dof
+    variance = sigma2 * np.linalg.inv(extended.T @ extended)[-1, -1]
+    if variance <= 0:
+        return None
+    return float(2 * stats.t.sf(abs(beta[-1]) / np.sqrt(variance), dof))
+
+
+def _lack_of_fit_p(design: NDArray[np.float64], resid: NDArray[np.float64], dof: int) -> float | None:
+    """Lack-of-fit F test against the scatter of replicate standards (identical design rows)."""
+    _, groups = np.unique(np.round(design, 12), axis=0, return_inverse=True)
+    groups = groups.reshape(-1)
+    n_groups = int(groups.max()) + 1
+    pure_dof = resid.size - n_groups
+    lack_dof = dof - pure_dof
+    if pure_dof <= 0 or lack_dof <= 0:
+        return None
+    means = np.bincount(groups, weights=resid) / np.bincount(groups)
+    pure_ss = float(np.sum((resid - means[groups]) ** 2))
+    lack_ss = float(resid @ resid) - pure_ss
+    if pure_ss <= 0:
+        return None
+    f_value = (lack_ss / lack_dof) / (pure_ss / pure_dof)
+    return float(stats.f.sf(f_value, lack_dof, pure_dof))

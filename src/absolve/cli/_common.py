@@ -1,0 +1,52 @@
+"""Small pieces shared by the commands: option parsing, provenance, file reading."""
+
+from __future__ import annotations
+
+import datetime as _dt
+import platform
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+from .. import __version__
+from ..errors import AbsolveError
+from ..io.files import file_sha256
+
+__all__ = ["parse_range", "provenance", "say"]
+
+
+def parse_range(text: str | None, option: str = "--range") -> tuple[float | None, float | None]:
+    """Parse ``"A:B"`` (either side may be empty) into wavelengths in nm."""
+    if text is None:
+        return None, None
+    parts = text.split(":")
+    if len(parts) != 2:
+        raise AbsolveError(f"{option} {text!r} is not of the form LOW:HIGH", fix=f"write e.g. {option} 400:700")
+    try:
+        low = float(parts[0]) if parts[0].strip() else None
+        high = float(parts[1]) if parts[1].strip() else None
+    except ValueError:
+        raise AbsolveError(f"{option} {text!r} holds something that is not a number", fix=f"write e.g. {option} 400:700") from None
+    if low is not None and high is not None and not low < high:
+        raise AbsolveError(f"{option} {text!r}: the low end must be below the high end", fix=f"write e.g. {option} 400:700")
+    return low, high
+
+
+def provenance(inputs: Sequence[str | Path], options: dict[str, Any]) -> dict[str, Any]:
+    """Record of input files (with SHA-256), options, tool version and time."""
+    return {
+        "tool": "absolve",
+        "version": __version__,
+        "python": platform.python_version(),
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "inputs": [{"file": Path(p).name, "sha256": file_sha256(p)} for p in inputs],
+        "options": {key: (str(value) if isinstance(value, Path) else value) for key, value in options.items()},
+    }
+
+
+def say(text: str, *, quiet: bool = False) -> None:
+    """Print a progress or status message to stderr (never data)."""
+    import sys
+
+    if not quiet:
+        print(text, file=sys.stderr)

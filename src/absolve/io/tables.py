@@ -1,0 +1,466 @@
+"""Plain-text tables: wide scan tables, long concentration tables, absorptivity tables.
+
+Layouts
+-------
+Scan table (.csv .tsv .txt)
+    First column wavelength in nm, every other column one scan whose header is
+    the scan name. The delimiter (comma, tab, semicolon or whitespace) is
+    sniffed; lines starting with ``#`` are comments; ``decimal=","`` reads
+    comma-decimal exports. Descending or uneven wavelength grids are sorted.
+Concentration table (CSV, long)
+    ``scan,component,concentration`` with optional ``path_length_cm`` and
+    ``dilution`` (both default 1). A scan with several rows is a mixed standard.
+Absorptivity table (CSV, wide)
+    Like a scan table, with one column per component holding absorbance per
+    (unit concentration x 1 cm).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import os
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from numpy.typing import NDArray
+
+from ..errors import AbsolveError
+from ..spectra import QUANTITIES, Quantity, Spectra, stack_spectra
+
+__all__ = [
+    "concentration_matrix",
+    "format_scan_table",
+    "read_concentration_table",
+    "read_scan_table",
+    "read_scans",
+    "read_text",
+    "JCAMP_SUFFIXES",
+]
+
+JCAMP_SUFFIXES = (".jdx", ".dx", ".jcamp")
+_MISSING_WORDS = {"", "na", "nan", "n/a", "null", "none", "-", "--", "inf", "-inf", "+inf", "infinity"}
+# Wavelengths a UV-Vis-NIR instrument can report, in nm (common practice, no source).
+_PLAUSIBLE_NM = (150.0, 3500.0)
+
+
+def read_text(path: str | os.PathLike[str]) -> str:
+    """Read a text file as UTF-8 (with or without BOM), falling back to Latin-1.
+
+    Binary files and missing files raise :class:`AbsolveError`.
+    """
+    file = Path(path)
+    try:
+        raw = file.read_bytes()
+    except FileNotFoundError:
+        raise AbsolveError("file not found", fix="check the path", file=file) from None
+    except IsADirectoryError:
+        raise AbsolveError("is a folder, not a file", fix="name a file", file=file) from None
+    except OSError as error:
+        raise AbsolveError(f"cannot read: {error.strerror}", fix="check the file's permissions", file=file) from None
+    if b"\x00" in raw[:65536]:
+        if raw.startswith((b"\xff\xfe", b"\xfe\xff")):
+            try:
+                return raw.decode("utf-16")
+            except UnicodeDecodeError:
+                pass
+        raise AbsolveError("not a text table (binary content)", fix="export the data as CSV or JCAMP-DX text", file=file)
+    try:
+        return raw.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        return raw.decode("latin-1")
+
+
+@dataclass(frozen=True)
+class _Lines:
+    """The data-bearing lines of a text table with their 1-based line numbers."""
+
+    texts: list[str]
+    numbers: list[int]
+
+
+def _content_lines(text: str) -> _Lines:
+    texts: list[str] = []
+    numbers: list[int] = []
+    for number, line in enumerate(text.splitlines(), start=1):
+        stripped = line.strip()
+        if stripped and not stripped.startswith("#"):
+            texts.append(line.rstrip("\r\n"))
+            numbers.append(number)
+    return _Lines(texts, numbers)
+
+
+def _sniff_delimiter(sample: Sequence[str], decimal: str, file: Path, line: int) -> str | None:
+    """Return the delimiter character, or None for runs of whitespace."""
+    joined = "\n".join(sample)
+    if "\t" in joined:
+        return "\t"
+    if ";" in joined:
+        return ";"
+    if "," in joined:
+        if decimal == ",":
+            raise AbsolveError(
+                "commas appear both as decimal marks and as separators",
+                fix="use ';' or tabs between columns in comma-decimal files",
+                file=file,
+                line=line,
+            )
+        return ","
+    return None
+
+
+def _split(line: str, delimiter: str | None) -> list[str]:
+    if delimiter is None:
+        return line.split()
+    return next(csv.reader([line], delimiter=delimiter))
+
+
+def _parse_number(cell: str, decimal: str) -> float | None:
+    text = cell.strip()
+    if decimal == ",":
+        text = text.replace(",", ".")
+    if text.lower() in _MISSING_WORDS:
+        return None
+    try:
+        value = float(text)
+    except ValueError:
+        return None
+    return value if np.isfinite(value) else None
+
+
+@dataclass(frozen=True)
+class WideTable:
+    """A parsed wide table: first column the grid, the rest named columns.
+
+    Attributes
+    ----------
+    grid : ndarray, shape (n_rows,)
+        First column, sorted increasing.
+    columns : ndarray, shape (n_columns, n_rows)
+        The other columns, rows following ``grid``'s order.
+    names : tuple of str
+        Column headers (generated when the file has no header).
+    """
+
+    grid: NDArray[np.float64]
+    columns: NDArray[np.float64]
+    names: tuple[str, ...]
+
+
+def read_wide_table(path: str | os.PathLike[str], *, decimal: str = ".", what: str = "scan") -> WideTable:
+    """Parse a wide table (grid in the first column), with precise errors.
+
+    Parameters
+    ----------
+    path : path-like
+        The file.
+    decimal : {".", ","}
+        Decimal mark.
+    what : str
+        What a column holds ("scan", "component"), for messages.
+    """
+    file = Path(path)
+    if decimal not in (".", ","):
+        raise AbsolveError(f"the decimal mark must be '.' or ','; got {decimal!r}", fix="use --decimal , or leave it out")
+    lines = _content_lines(read_text(file))
+    if not lines.texts:
+        raise AbsolveError("the file holds no data", fix="check it is the right export", file=file)
+    delimiter = _sniff_delimiter(lines.texts[:5], decimal, file, lines.numbers[0])
+    header = [cell.strip() for cell in _split(lines.texts[0], delimiter)]
+    has_header = _parse_number(header[0], decimal) is None
+    if len(header) < 2:
+        raise AbsolveError(
+            f"found one column; a {what} table needs a wavelength column and at least one {what} column",
+            fix="check the delimiter (comma, tab, semicolon or spaces) and --decimal",
+            file=file,
+            line=lines.numbers[0],
+        )
+    body = slice(1, None) if has_header else slice(0, None)
+    data_lines, data_numbers = lines.texts[body], lines.numbers[body]
+    if not data_lines:
+        raise AbsolveError("the file has a header but no data rows", fix="check it is the right export", file=file, line=lines.numbers[0])
+    n_columns = len(header)
+    matrix = _fast_parse(data_lines, delimiter, decimal, n_columns)
+    if matrix is None:
+        matrix = _careful_parse(data_lines, data_numbers, delimiter, decimal, n_columns, file, what)
+    if has_header:
+        names = tuple(name if name else f"{what}-{j}" for j, name in enumerate(header[1:], start=1))
+        empty = [j for j, name in enumerate(header[1:], start=2) if not name]
+        if empty:
+            raise AbsolveError(
+                f"column {empty[0]} has no header", fix=f"give every {what} column a name", file=file, line=lines.numbers[0], column=empty[0]
+            )
+    else:
+        names = tuple(f"{file.stem}-{j}" for j in range(1, n_columns))
+    duplicated = [name for j, name in enumerate(names) if name in names[:j]]
+    if duplicated:
+        raise AbsolveError(
+            f"two columns are named {duplicated[0]!r}", fix=f"give every {what} a unique name", file=file, line=lines.numbers[0]
+        )
+    grid = matrix[:, 0]
+    order = np.argsort(grid, kind="stable")
+    grid = grid[order]
+    repeats = np.flatnonzero(np.diff(grid) == 0)
+    if repeats.size:
+        first_row = int(order[repeats[0] + 1])
+        raise AbsolveError(
+            f"wavelength {grid[repeats[0]]:g} nm appears twice",
+            fix="remove the repeated row",
+            file=file,
+            line=data_numbers[first_row],
+            column=1,
+        )
+    if grid.size < 2:
+        raise AbsolveError("only one wavelength", fix="a scan needs at least two wavelengths", file=file, line=data_numbers[0])
+    if grid[0] < _PLAUSIBLE_NM[0] or grid[-1] > _PLAUSIBLE_NM[1]:
+        raise AbsolveError(
+            f"the first column runs from {grid[0]:g} to {grid[-1]:g}, which is not a UV-Vis wavelength range in nm",
+            fix="the first column must be the wavelength in nm (convert wavenumbers or micrometres first)",
+            file=file,
+            column=1,
+        )
+    return WideTable(grid, np.ascontiguousarray(matrix[order, 1:].T), names)
+
+
+def _fast_parse(lines: list[str], delimiter: str | None, decimal: str, n_columns: int) -> NDArray[np.float64] | None:
+    """Parse all-numeric, complete data with pandas' C reader; None when anything is off."""
+    try:
+        frame = pd.read_csv(
+            io.StringIO("\n".join(lines)),
+            sep=r"\s+" if delimiter is None else delimiter,
+            header=None,
+            decimal=decimal,
+            dtype=np.float64,
+            engine="c",
+            na_filter=True,
+        )
+    except (ValueError, pd.errors.ParserError):
+        return None
+    values = frame.to_numpy(dtype=np.float64)
+    if values.shape[1] != n_columns or not np.all(np.isfinite(values)):
+        return None
+    return values
+
+
+def _careful_parse(
+    lines: list[str], numbers: list[int], delimiter: str | None, decimal: str, n_columns: int, file: Path, what: str
+) -> NDArray[np.float64]:
+    """Parse cell by cell to name the first bad cell precisely."""
+    rows: list[list[float]] = []
+    for text, number in zip(lines, numbers):
+        cells = _split(text, delimiter)
+        if len(cells) != n_columns:
+            raise AbsolveError(
+                f"{len(cells)} cells where the header has {n_columns}",
+                fix="every row needs a wavelength and one value per column (check the delimiter)",
+                file=file,
+                line=number,
+            )
+        row = []
+        for column, cell in enumerate(cells, start=1):
+            value = _parse_number(cell, decimal)
+            if value is None:
+                shown = cell.strip()
+                if shown.lower() in _MISSING_WORDS:
+                    problem = "missing value" if shown == "" else f"{shown!r} is not a measured value"
+                    fix = "fill in the value or remove the row"
+                else:
+                    problem = f"{shown[:40]!r} is not a number"
+                    fix = "use --decimal , for comma decimals" if "," in shown and decimal == "." else "correct the cell"
+                raise AbsolveError(problem, fix=fix, file=file, line=number, column=column)
+            row.append(value)
+        rows.append(row)
+    return np.array(rows, dtype=np.float64)
+
+
+def read_scan_table(path: str | os.PathLike[str], *, decimal: str = ".", quantity: Quantity = "absorbance") -> Spectra:
+    """Read a wide scan table into :class:`Spectra` (in ``quantity``, not yet converted).
+
+    Transmittance above 1.1 (or percent transmittance above 110) is refused as
+    a likely wrong ``quantity``; transmittance at or below zero is kept and
+    becomes an unusable (saturated) point on conversion to absorbance.
+    """
+    if quantity not in QUANTITIES:
+        raise AbsolveError(f"unknown quantity {quantity!r}", fix="use one of " + ", ".join(QUANTITIES))
+    table = read_wide_table(path, decimal=decimal, what="scan")
+    _check_quantity(table.columns, quantity, Path(path))
+    return Spectra(table.grid, table.columns, table.names, quantity, source=str(path))
+
+
+def _check_quantity(values: NDArray[np.float64], quantity: Quantity, file: Path) -> None:
+    # Allowing a few percent above full scale covers ordinary noise on a clear
+    # blank (common practice, no source).
+    top = float(values.max())
+    if quantity == "transmittance" and top > 1.1:
+        raise AbsolveError(
+            f"transmittance up to {top:g} (above 1)",
+            fix="for percent values use --quantity percent-transmittance",
+            file=file,
+        )
+    if quantity == "percent-transmittance" and top > 110.0:
+        raise AbsolveError(f"percent transmittance up to {top:g} (above 100 %)", fix="check the export's quantity and units", file=file)
+    if quantity == "absorbance" and top > 10.0:
+        raise AbsolveError(
+            f"absorbance up to {top:g}, beyond any photometric range",
+            fix="if the file holds %T use --quantity percent-transmittance",
+            file=file,
+        )
+
+
+def read_scans(
+    paths: Sequence[str | os.PathLike[str]], *, decimal: str = ".", quantity: Quantity | None = None
+) -> Spectra:
+    """Read scan tables and JCAMP-DX files and join them as absorbance.
+
+    ``quantity`` applies to tables (default absorbance) and overrides the
+    units a JCAMP-DX file declares when given.
+    """
+    if not paths:
+        raise AbsolveError("no scan files given", fix="name at least one scan file")
+    batches = []
+    for path in paths:
+        if Path(path).suffix.lower() in JCAMP_SUFFIXES:
+            from .jcamp import read_jcamp
+
+            batches.append(read_jcamp(path, quantity=quantity))
+        else:
+            batches.append(read_scan_table(path, decimal=decimal, quantity=quantity or "absorbance"))
+    return stack_spectra(batches)
+
+
+def _format_float(value: float) -> str:
+    return "" if not np.isfinite(value) else f"{value:.6f}"
+
+
+def format_scan_table(spectra: Spectra, *, first_header: str = "wavelength_nm") -> str:
+    """CSV text of ``spectra`` in the wide layout (fixed 6-decimal values, empty cells for NaN)."""
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow([first_header, *spectra.names])
+    for j, wavelength in enumerate(spectra.wavelengths):
+        writer.writerow([f"{wavelength:g}", *(_format_float(v) for v in spectra.values[:, j])])
+    return buffer.getvalue()
+
+
+_CONCENTRATION_COLUMNS = ("scan", "component", "concentration")
+_OPTIONAL_COLUMNS = {"path_length_cm": 1.0, "dilution": 1.0}
+
+
+def read_concentration_table(path: str | os.PathLike[str]) -> pd.DataFrame:
+    """Read a long concentration table.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``scan, component, concentration, path_length_cm, dilution, line``
+        (``line`` is the 1-based line in the file, for messages).
+    """
+    file = Path(path)
+    lines = _content_lines(read_text(file))
+    if not lines.texts:
+        raise AbsolveError("the table is empty", fix="add a header 'scan,component,concentration' and rows", file=file)
+    delimiter = _sniff_delimiter(lines.texts[:3], ".", file, lines.numbers[0]) or ","
+    header = [cell.strip().lower() for cell in _split(lines.texts[0], delimiter)]
+    missing = [name for name in _CONCENTRATION_COLUMNS if name not in header]
+    if missing:
+        raise AbsolveError(
+            f"the header lacks the column {missing[0]!r} (found: {', '.join(header)})",
+            fix="the header must name scan, component, concentration (optional path_length_cm, dilution)",
+            file=file,
+            line=lines.numbers[0],
+        )
+    records = []
+    for text, number in zip(lines.texts[1:], lines.numbers[1:]):
+        cells = [cell.strip() for cell in _split(text, delimiter)]
+        if len(cells) != len(header):
+            raise AbsolveError(
+                f"{len(cells)} cells where the header has {len(header)}", fix="check the row", file=file, line=number
+            )
+        row = dict(zip(header, cells))
+        record: dict[str, object] = {"scan": row["scan"], "component": row["component"], "line": number}
+        if not row["scan"] or not row["component"]:
+            raise AbsolveError("empty scan or component name", fix="fill in both names", file=file, line=number)
+        for name, default in (("concentration", None), *_OPTIONAL_COLUMNS.items()):
+            cell = row.get(name, "")
+            if cell == "" and default is not None:
+                record[name] = default
+                continue
+            value = _parse_number(cell, ".")
+            column = header.index(name) + 1
+            if value is None:
+                raise AbsolveError(f"{name} {cell!r} is not a number", fix="correct the cell", file=file, line=number, column=column)
+            if name == "concentration" and value < 0:
+                raise AbsolveError(f"negative concentration {value:g}", fix="concentrations must be >= 0", file=file, line=number, column=column)
+            if name != "concentration" and value <= 0:
+                raise AbsolveError(f"{name} must be positive; got {value:g}", fix="correct the cell", file=file, line=number, column=column)
+            record[name] = value
+        records.append(record)
+    if not records:
+        raise AbsolveError("the table has a header but no rows", fix="add one row per scan and component", file=file)
+    frame = pd.DataFrame.from_records(records)
+    repeated = frame.duplicated(["scan", "component"])
+    if repeated.any():
+        bad = frame[repeated].iloc[0]
+        raise AbsolveError(
+            f"scan {bad['scan']!r} lists component {bad['component']!r} twice",
+            fix="give one row per scan and component",
+            file=file,
+            line=int(bad["line"]),
+        )
+    for name in _OPTIONAL_COLUMNS:
+        per_scan = frame.groupby("scan", sort=False)[name].nunique()
+        if (per_scan > 1).any():
+            scan = per_scan.index[int(np.argmax(per_scan.to_numpy() > 1))]
+            raise AbsolveError(f"scan {scan!r} has differing {name} values", fix=f"use one {name} per scan", file=file)
+    frame.attrs["source"] = str(file)
+    return frame
+
+
+def concentration_matrix(
+    table: pd.DataFrame, scan_names: Sequence[str], components: Sequence[str] | None = None
+) -> tuple[NDArray[np.float64], tuple[str, ...]]:
+    """Concentrations as a (n_scans, n_components) matrix, zeros where a scan lacks a component.
+
+    Every scan in ``scan_names`` must appear in the table, and every table row
+    must name a scan in ``scan_names``.
+    """
+    source = table.attrs.get("source")
+    names = tuple(components) if components is not None else tuple(dict.fromkeys(table["component"]))
+    known = set(scan_names)
+    unknown = table[~table["scan"].isin(known)]
+    if len(unknown):
+        row = unknown.iloc[0]
+        raise AbsolveError(
+            f"scan {row['scan']!r} is not among the scans read",
+            fix="check the scan names (column headers) match the table",
+            file=source,
+            line=int(row["line"]),
+        )
+    listed = set(table["scan"])
+    absent = [name for name in scan_names if name not in listed]
+    if absent:
+        raise AbsolveError(
+            f"scan {absent[0]!r} has no row in the concentration table",
+            fix="add its concentrations, or leave the scan out",
+            file=source,
+        )
+    index = {name: i for i, name in enumerate(scan_names)}
+    column = {name: j for j, name in enumerate(names)}
+    stray = table[~table["component"].isin(column)]
+    if len(stray):
+        row = stray.iloc[0]
+        raise AbsolveError(f"unknown component {row['component']!r}", fix="use one of " + ", ".join(names), file=source, line=int(row["line"]))
+    matrix = np.zeros((len(scan_names), len(names)))
+    rows = table["scan"].map(index).to_numpy()
+    cols = table["component"].map(column).to_numpy()
+    matrix[rows, cols] = table["concentration"].to_numpy(dtype=np.float64)
+    return matrix, names
+
+
+def per_scan_value(table: pd.DataFrame, scan_names: Sequence[str], column: str) -> NDArray[np.float64]:
+    """One value per scan of ``column`` (``path_length_cm`` or ``dilution``)."""
+    first = table.drop_duplicates("scan").set_index("scan")[column]
+    return first.reindex(list(scan_names)).to_numpy(dtype=np.float64)

@@ -1,0 +1,67 @@
+"""Plain-text views of results for the terminal (formatting only, no computation)."""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+from .library import ReferenceLibrary
+
+__all__ = ["format_table", "library_report"]
+
+
+def format_table(headers: Sequence[str], rows: Sequence[Sequence[str]], *, align: str | None = None) -> str:
+    """Fixed-width table; ``align`` holds 'l' or 'r' per column (default: first left, rest right)."""
+    widths = [len(h) for h in headers]
+    for row in rows:
+        widths = [max(w, len(cell)) for w, cell in zip(widths, row)]
+    align = align or "l" + "r" * (len(headers) - 1)
+
+    def line(cells: Sequence[str]) -> str:
+        return "  ".join(cell.ljust(w) if a == "l" else cell.rjust(w) for cell, w, a in zip(cells, widths, align)).rstrip()
+
+    return "\n".join([line(headers), line(["-" * w for w in widths]), *(line(row) for row in rows)])
+
+
+def _number(value: float | None, spec: str = ".4g") -> str:
+    return "-" if value is None else format(value, spec)
+
+
+def library_report(library: ReferenceLibrary) -> str:
+    """Readable summary of a library: per component peak, absorptivity +/- se, levels, range, warnings."""
+    summary = library.summary()
+    unit = library.unit
+    rows = []
+    for item in summary["components"]:
+        span = item["concentration_range"]
+        rows.append(
+            [
+                item["component"],
+                f"{item['peak_wavelength_nm']:g}",
+                f"{item['peak_absorptivity']:.5g} ± {item['peak_std_error']:.2g}",
+                str(item["levels"]),
+                "-" if span is None else f"{span[0]:g}-{span[1]:g}",
+                _number(item["r_squared"], ".5f"),
+                _number(item["linear_limit_absorbance"], ".3f"),
+            ]
+        )
+    low, high = summary["wavelength_range_nm"]
+    lines = [
+        f"Reference library: {library.n_components} components, {low:g}-{high:g} nm ({summary['n_wavelengths']} points), unit {unit}",
+        format_table(
+            ["component", "peak nm", f"absorptivity at peak (per {unit} per cm)", "levels", f"range ({unit})", "R^2", "leaves line at A"],
+            rows,
+        ),
+    ]
+    limit = summary["linear_limit_absorbance"]
+    if limit is not None:
+        lines.append(f"Working range: measured absorbance up to {limit:.3f}; sample points above it will be excluded.")
+    if library.noise is not None:
+        noise = library.noise
+        lines.append(
+            f"Noise model: sd = sqrt({noise.floor:.2g}^2 + ({noise.proportional:.2g} x A)^2), "
+            f"correlation length {noise.correlation_length_nm:.2g} nm"
+        )
+    for item in summary["components"]:
+        for warning in item["warnings"]:
+            lines.append(f"warning: {item['component']}: {warning}")
+    return "\n".join(lines)
