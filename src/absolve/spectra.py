@@ -73,7 +73,8 @@ class Spectra:
         data = np.array(values, dtype=np.float64)
         if data.ndim == 1:
             data = data.reshape(1, -1)
-        where = source or "scans"
+        # The file name, when known, is shown by AbsolveError itself; name the batch only when it is not.
+        where = "" if source else "scans: "
         if quantity not in QUANTITIES:
             raise AbsolveError(
                 f"unknown quantity {quantity!r}",
@@ -82,28 +83,29 @@ class Spectra:
             )
         if data.ndim != 2 or data.shape[1] != grid.size:
             raise AbsolveError(
-                f"{where}: values of shape {data.shape} do not match {grid.size} wavelengths",
+                f"{where}values of shape {data.shape} do not match {grid.size} wavelengths",
                 fix="give one value per wavelength for every scan",
+                file=source,
             )
         if data.shape[0] == 0 or grid.size == 0:
-            raise AbsolveError(f"{where}: no scans or no wavelengths", fix="check the file holds data", file=source)
+            raise AbsolveError(f"{where}no scans or no wavelengths", fix="check the file holds data", file=source)
         if not np.all(np.isfinite(grid)):
-            raise AbsolveError(f"{where}: a wavelength is not a finite number", fix="check the wavelength column", file=source)
+            raise AbsolveError(f"{where}a wavelength is not a finite number", fix="check the wavelength column", file=source)
         if grid.size > 1 and not np.all(np.diff(grid) > 0):
             raise AbsolveError(
-                f"{where}: wavelengths are not strictly increasing",
+                f"{where}wavelengths are not strictly increasing",
                 fix="remove duplicate wavelengths or sort the table",
                 file=source,
             )
         if np.any(np.isinf(data)):
-            raise AbsolveError(f"{where}: infinite value", fix="replace it with a measured number", file=source)
+            raise AbsolveError(f"{where}infinite value", fix="replace it with a measured number", file=source)
         name_tuple = tuple(str(name) for name in names)
         if len(name_tuple) != data.shape[0]:
-            raise AbsolveError(f"{where}: {len(name_tuple)} names for {data.shape[0]} scans")
+            raise AbsolveError(f"{where}{len(name_tuple)} names for {data.shape[0]} scans", file=source)
         if len(set(name_tuple)) != len(name_tuple):
             duplicated = sorted({n for n in name_tuple if name_tuple.count(n) > 1})
             raise AbsolveError(
-                f"{where}: duplicate scan name {duplicated[0]!r}",
+                f"{where}duplicate scan name {duplicated[0]!r}",
                 fix="give every scan a unique name",
                 file=source,
             )
@@ -194,8 +196,10 @@ class Spectra:
         to the neighbouring target points that depend on them).
         """
         target = np.asarray(grid, dtype=np.float64)
+        if target.size == 0:
+            raise AbsolveError("no wavelengths to interpolate onto", fix="give a grid with at least one wavelength", file=self.source)
         tolerance = 1e-9 * max(1.0, float(np.abs(self.wavelengths).max()))
-        if target.size == 0 or target[0] < self.wavelengths[0] - tolerance or target[-1] > self.wavelengths[-1] + tolerance:
+        if target[0] < self.wavelengths[0] - tolerance or target[-1] > self.wavelengths[-1] + tolerance:
             raise AbsolveError(
                 f"{self.source or 'scans'} cover {self.wavelengths[0]:g}-{self.wavelengths[-1]:g} nm, "
                 f"which does not include the requested {target[0]:g}-{target[-1]:g} nm",
@@ -229,7 +233,10 @@ def interpolate_rows(x: NDArray[np.float64], rows: NDArray[np.float64], target: 
     right = np.clip(np.searchsorted(x, target, side="right"), 1, x.size - 1)
     left = right - 1
     weight = np.clip((target - x[left]) / (x[right] - x[left]), 0.0, 1.0)
-    return rows[:, left] * (1.0 - weight) + rows[:, right] * weight
+    blend = rows[:, left] * (1.0 - weight) + rows[:, right] * weight
+    # A target that falls on a grid point takes that point alone, so an
+    # unusable (NaN) neighbour does not spread to a usable point.
+    return np.where(weight == 0.0, rows[:, left], np.where(weight == 1.0, rows[:, right], blend))
 
 
 def stack_spectra(batches: Sequence[Spectra]) -> Spectra:
@@ -246,6 +253,12 @@ def stack_spectra(batches: Sequence[Spectra]) -> Spectra:
     low = max(batch.wavelengths[0] for batch in batches)
     high = min(batch.wavelengths[-1] for batch in batches)
     grid = grid[(grid >= low) & (grid <= high)]
+    if grid.size == 0:
+        spans = "; ".join(f"{batch.source or 'scans'} {batch.wavelengths[0]:g}-{batch.wavelengths[-1]:g} nm" for batch in batches)
+        raise AbsolveError(
+            f"the scan files share no wavelength ({spans})",
+            fix="join only scans that cover a common wavelength range",
+        )
     parts = [batch.to_absorbance().interpolate(grid) for batch in batches]
     names = [name for part in parts for name in part.names]
     source = ", ".join(dict.fromkeys(part.source or "scans" for part in parts))

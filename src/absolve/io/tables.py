@@ -102,6 +102,9 @@ def _sniff_delimiter(sample: Sequence[str], decimal: str, file: Path, line: int)
         return ";"
     if "," in joined:
         if decimal == ",":
+            # Commas are decimal marks here, so columns can only be separated by whitespace.
+            if all(len(line.split()) >= 2 for line in sample):
+                return None
             raise AbsolveError(
                 "commas appear both as decimal marks and as separators",
                 fix="use ';' or tabs between columns in comma-decimal files",
@@ -122,7 +125,8 @@ def _parse_number(cell: str, decimal: str) -> float | None:
     text = cell.strip()
     if decimal == ",":
         text = text.replace(",", ".")
-    if text.lower() in _MISSING_WORDS:
+    # Python's float() reads "1_000" as 1000; no instrument writes that, so it is a typo, not a number.
+    if text.lower() in _MISSING_WORDS or "_" in text:
         return None
     try:
         value = float(text)
@@ -143,11 +147,14 @@ class WideTable:
         The other columns, rows following ``grid``'s order.
     names : tuple of str
         Column headers (generated when the file has no header).
+    lines : ndarray of int, shape (n_rows,)
+        1-based line in the file of each row, in ``grid``'s order (for messages).
     """
 
     grid: NDArray[np.float64]
     columns: NDArray[np.float64]
     names: tuple[str, ...]
+    lines: NDArray[np.int64]
 
 
 def read_wide_table(path: str | os.PathLike[str], *, decimal: str = ".", what: str = "scan") -> WideTable:
@@ -215,14 +222,16 @@ def read_wide_table(path: str | os.PathLike[str], *, decimal: str = ".", what: s
         )
     if grid.size < 2:
         raise AbsolveError("only one wavelength", fix="a scan needs at least two wavelengths", file=file, line=data_numbers[0])
+    lines_sorted = np.asarray(data_numbers, dtype=np.int64)[order]
     if grid[0] < _PLAUSIBLE_NM[0] or grid[-1] > _PLAUSIBLE_NM[1]:
         raise AbsolveError(
             f"the first column runs from {grid[0]:g} to {grid[-1]:g}, which is not a UV-Vis wavelength range in nm",
             fix="the first column must be the wavelength in nm (convert wavenumbers or micrometres first)",
             file=file,
+            line=int(lines_sorted[0] if grid[0] < _PLAUSIBLE_NM[0] else lines_sorted[-1]),
             column=1,
         )
-    return WideTable(grid, np.ascontiguousarray(matrix[order, 1:].T), names)
+    return WideTable(grid, np.ascontiguousarray(matrix[order, 1:].T), names, lines_sorted)
 
 
 def _fast_parse(lines: list[str], delimiter: str | None, decimal: str, n_columns: int) -> NDArray[np.float64] | None:
@@ -286,27 +295,29 @@ def read_scan_table(path: str | os.PathLike[str], *, decimal: str = ".", quantit
     if quantity not in QUANTITIES:
         raise AbsolveError(f"unknown quantity {quantity!r}", fix="use one of " + ", ".join(QUANTITIES))
     table = read_wide_table(path, decimal=decimal, what="scan")
-    _check_quantity(table.columns, quantity, Path(path))
+    _check_quantity(table, quantity, Path(path))
     return Spectra(table.grid, table.columns, table.names, quantity, source=str(path))
 
 
-def _check_quantity(values: NDArray[np.float64], quantity: Quantity, file: Path) -> None:
+def _check_quantity(table: WideTable, quantity: Quantity, file: Path) -> None:
     # Allowing a few percent above full scale covers ordinary noise on a clear
     # blank (common practice, no source).
-    top = float(values.max())
+    column, row = np.unravel_index(int(np.argmax(table.columns)), table.columns.shape)
+    top = float(table.columns[column, row])
+    where = {"file": file, "line": int(table.lines[row]), "column": int(column) + 2}
     if quantity == "transmittance" and top > 1.1:
         raise AbsolveError(
             f"transmittance up to {top:g} (above 1)",
             fix="for percent values use --quantity percent-transmittance",
-            file=file,
+            **where,
         )
     if quantity == "percent-transmittance" and top > 110.0:
-        raise AbsolveError(f"percent transmittance up to {top:g} (above 100 %)", fix="check the export's quantity and units", file=file)
+        raise AbsolveError(f"percent transmittance up to {top:g} (above 100 %)", fix="check the export's quantity and units", **where)
     if quantity == "absorbance" and top > 10.0:
         raise AbsolveError(
             f"absorbance up to {top:g}, beyond any photometric range",
             fix="if the file holds %T use --quantity percent-transmittance",
-            file=file,
+            **where,
         )
 
 
@@ -341,7 +352,8 @@ def format_scan_table(spectra: Spectra, *, first_header: str = "wavelength_nm") 
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow([first_header, *spectra.names])
     for j, wavelength in enumerate(spectra.wavelengths):
-        writer.writerow([f"{wavelength:g}", *(_format_float(v) for v in spectra.values[:, j])])
+        # Shortest text that reads back to the same float: fine grids must not collapse onto repeated wavelengths.
+        writer.writerow([np.format_float_positional(wavelength, trim="-"), *(_format_float(v) for v in spectra.values[:, j])])
     return buffer.getvalue()
 
 
@@ -411,10 +423,16 @@ def read_concentration_table(path: str | os.PathLike[str]) -> pd.DataFrame:
             line=int(bad["line"]),
         )
     for name in _OPTIONAL_COLUMNS:
-        per_scan = frame.groupby("scan", sort=False)[name].nunique()
-        if (per_scan > 1).any():
-            scan = per_scan.index[int(np.argmax(per_scan.to_numpy() > 1))]
-            raise AbsolveError(f"scan {scan!r} has differing {name} values", fix=f"use one {name} per scan", file=file)
+        differs = frame[name] != frame.groupby("scan", sort=False)[name].transform("first")
+        if differs.any():
+            bad = frame[differs].iloc[0]
+            raise AbsolveError(
+                f"scan {bad['scan']!r} has differing {name} values",
+                fix=f"use one {name} per scan",
+                file=file,
+                line=int(bad["line"]),
+                column=header.index(name) + 1,
+            )
     frame.attrs["source"] = str(file)
     return frame
 
