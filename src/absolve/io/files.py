@@ -52,10 +52,23 @@ def atomic_write(path: str | os.PathLike[str], content: str | bytes) -> None:
     try:
         with os.fdopen(handle, "wb") as stream:
             stream.write(data)
+        # mkstemp creates the file readable by its owner only; give it the
+        # permissions an ordinary new file would get, so colleagues can read results.
+        os.chmod(temporary, 0o666 & ~_umask())
         os.replace(temporary, target)
+    except OSError as error:
+        Path(temporary).unlink(missing_ok=True)
+        raise AbsolveError(f"cannot write {target}: {error.strerror}", fix="check the path names a file in a writable folder, with free space") from None
     except BaseException:
         Path(temporary).unlink(missing_ok=True)
         raise
+
+
+def _umask() -> int:
+    """The process's file-creation mask (os.umask can only be read by setting it)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def write_all(files: Mapping[Path, str | bytes], *, force: bool) -> None:
