@@ -28,6 +28,7 @@ from scipy import optimize, stats
 
 from .errors import AbsolveError
 from .library import ComponentCalibration, NoiseModel, ReferenceLibrary
+from .photometry import correct_stray_light
 from .spectra import Spectra
 
 __all__ = ["Calibration", "calibrate"]
@@ -63,21 +64,29 @@ class Calibration:
         Measured absorbance above which no standard point is trusted at all.
     detect_working_range : bool
         Find where the standards leave the line and exclude what lies above it.
+    correct_stray_light : bool
+        Estimate the instrument's stray-light fraction from the standards'
+        curvature and correct for it (see :mod:`absolve.photometry`); the
+        library records it so that samples get the same correction.
 
     Attributes
     ----------
     library_ : ReferenceLibrary
         The fitted library.
     linear_limit_ : float or None
-        Measured absorbance above which the standards leave the line (None: they never did).
+        Absorbance (after stray-light correction) above which the standards leave the line (None: they never did).
+    stray_light_ : float
+        Estimated stray-light fraction (0 when not corrected).
     """
 
     unit: str
     linearity_tolerance: float = 0.01
     ceiling: float = 3.0
     detect_working_range: bool = True
+    correct_stray_light: bool = True
     library_: ReferenceLibrary = field(init=False, repr=False)
     linear_limit_: float | None = field(init=False, default=None)
+    stray_light_: float = field(init=False, default=0.0)
 
     def fit(
         self,
@@ -116,8 +125,10 @@ class Calibration:
             raise AbsolveError("path lengths must be positive numbers, one per standard", fix="check the path_length_cm column")
         design = np.column_stack([conc * paths[:, None], np.ones(n_std)])
         _check_design(design, conc, names)
-        absorbance = scans.values
-        trusted = scans.usable & (absorbance <= self.ceiling)
+        trusted = scans.usable & (scans.values <= self.ceiling)
+        stray = _estimate_stray_light(design, scans.values, trusted) if self.correct_stray_light else 0.0
+        absorbance = correct_stray_light(scans.values, stray)
+        trusted &= np.isfinite(absorbance)
         fit = _fit_per_wavelength(design, absorbance, trusted)
         limits: dict[int, float | None] = {}
         limit: float | None = None
@@ -137,6 +148,7 @@ class Calibration:
         used = trusted if limit is None else trusted & (absorbance <= limit)
         noise = _noise_model(fit, scans.wavelengths)
         self.linear_limit_ = limit
+        self.stray_light_ = stray
         highest = float(np.max(np.where(used, absorbance, -np.inf)))
         details = tuple(
             _audit(
@@ -153,6 +165,7 @@ class Calibration:
             components=details,
             linear_limit_absorbance=limit if limit is not None else highest,
             noise=noise,
+            stray_light=stray,
             residual_dof=int(np.median(fit.residual_dof)),
             provenance=dict(provenance or {}),
         )
@@ -247,6 +260,34 @@ def _fit_per_wavelength(design: NDArray[np.float64], absorbance: NDArray[np.floa
         leverage[np.ix_(rows, columns)] = hat[:, None]
     predicted = design @ coefficients
     return _Fit(coefficients, std_error, dof, residuals, leverage, predicted)
+
+
+def _estimate_stray_light(design: NDArray[np.float64], absorbance: NDArray[np.float64], trusted: NDArray[np.bool_]) -> float:
+    """Stray-light fraction that makes the standards most linear (bounded 1-D least squares).
+
+    Only meaningful when the standards reach absorbances where stray light
+    shows (above about 1); below that the estimate stays at 0.
+    """
+    if np.nanmax(np.where(trusted, absorbance, np.nan)) < 1.0:
+        return 0.0
+
+    # The same points for every candidate: those the largest candidate can still correct.
+    largest = 0.01
+    usable = trusted & np.isfinite(correct_stray_light(absorbance, largest))
+    columns = usable.all(axis=0)
+    if columns.sum() < 2:
+        return 0.0
+    measured = absorbance[:, columns]
+
+    def misfit(fraction: float) -> float:
+        y = correct_stray_light(measured, fraction)
+        beta, *_ = np.linalg.lstsq(design, y, rcond=None)
+        return float(np.sum((y - design @ beta) ** 2))
+
+    found = optimize.minimize_scalar(misfit, bounds=(0.0, largest), method="bounded", options={"xatol": 1e-6})
+    fraction = float(found.x)
+    # A fraction that does not beat no correction at all is noise, not stray light.
+    return fraction if found.fun < misfit(0.0) else 0.0
 
 
 def _departure(

@@ -140,6 +140,9 @@ class ReferenceLibrary:
         Measured absorbance above which points are outside the validated working range.
     noise : NoiseModel or None
         Instrument noise learned from the standards.
+    stray_light : float
+        Stray-light fraction found in the standards; samples are corrected the
+        same way before fitting (0: no correction).
     residual_dof : int
         Degrees of freedom of the absorptivity standard errors (0 when unknown).
     provenance : dict
@@ -153,6 +156,7 @@ class ReferenceLibrary:
     components: tuple[ComponentCalibration, ...]
     linear_limit_absorbance: float | None = None
     noise: NoiseModel | None = None
+    stray_light: float = 0.0
     residual_dof: int = 0
     provenance: Mapping[str, Any] = field(default_factory=dict)
 
@@ -171,6 +175,8 @@ class ReferenceLibrary:
             )
         if grid.size < 2 or not np.all(np.diff(grid) > 0):
             raise AbsolveError("library wavelengths must be at least two, strictly increasing")
+        if not (np.isfinite(self.stray_light) and 0 <= self.stray_light < 0.1):
+            raise AbsolveError(f"stray-light fraction must lie in [0, 0.1); got {self.stray_light!r}")
         if not (np.all(np.isfinite(k)) and np.all(np.isfinite(se)) and np.all(se >= 0)):
             raise AbsolveError("library absorptivities and standard errors must be finite (errors >= 0)")
         names = [c.name for c in self.components]
@@ -246,6 +252,7 @@ class ReferenceLibrary:
             "wavelength_range_nm": [float(self.wavelengths[0]), float(self.wavelengths[-1])],
             "n_wavelengths": int(self.wavelengths.size),
             "linear_limit_absorbance": self.linear_limit_absorbance,
+            "stray_light": self.stray_light,
             "components": rows,
         }
 

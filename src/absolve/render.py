@@ -3,10 +3,16 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
+from typing import TYPE_CHECKING
+
+import numpy as np
 
 from .library import ReferenceLibrary
 
-__all__ = ["format_table", "library_report"]
+if TYPE_CHECKING:
+    from .quantify import MixtureResult
+
+__all__ = ["format_table", "library_report", "mixture_report"]
 
 
 def format_table(headers: Sequence[str], rows: Sequence[Sequence[str]], *, align: str | None = None) -> str:
@@ -23,7 +29,7 @@ def format_table(headers: Sequence[str], rows: Sequence[Sequence[str]], *, align
 
 
 def _number(value: float | None, spec: str = ".4g") -> str:
-    return "-" if value is None else format(value, spec)
+    return "-" if value is None or not np.isfinite(value) else format(value, spec)
 
 
 def library_report(library: ReferenceLibrary) -> str:
@@ -64,4 +70,44 @@ def library_report(library: ReferenceLibrary) -> str:
     for item in summary["components"]:
         for warning in item["warnings"]:
             lines.append(f"warning: {item['component']}: {warning}")
+    return "\n".join(lines)
+
+
+def _value_cell(concentration: float, expanded: float, upper: float) -> str:
+    if np.isnan(concentration):
+        return "no result"
+    if np.isfinite(upper):
+        return f"< {upper:.3g}"
+    if np.isnan(expanded):
+        return f"{concentration:.4g} ± ?"
+    return f"{concentration:.4g} ± {expanded:.2g}"
+
+
+def mixture_report(result: MixtureResult, *, max_scans: int = 200) -> str:
+    """Terminal table: one row per scan, concentration ± expanded uncertainty per component, flags.
+
+    Values held at zero show as an upper limit ("< x"). Batches longer than
+    ``max_scans`` show the first rows and a count of the rest.
+    """
+    headers = ["scan", *(f"{name} ({result.unit})" for name in result.components), "rms resid", "cond", "flags"]
+    rows = []
+    shown = min(result.n_scans, max_scans)
+    for i in range(shown):
+        cells = [result.scan_names[i]]
+        for j in range(len(result.components)):
+            cells.append(_value_cell(result.concentration[i, j], result.expanded_uncertainty[i, j], result.upper_limit[i, j]))
+        labels = list(result.scan_flags[i]) + sorted({f for per in result.flags[i] for f in per if f != "below-detection"})
+        cells += [_number(result.rms_residual[i], ".2g"), _number(result.condition_number[i], ".3g"), ", ".join(dict.fromkeys(labels)) or "ok"]
+        rows.append(cells)
+    lines = [format_table(headers, rows)]
+    if result.n_scans > shown:
+        lines.append(f"... and {result.n_scans - shown} more scans (all of them are in results.csv)")
+    k = result.coverage_factor[np.isfinite(result.coverage_factor)]
+    if k.size:
+        lines.append(f"± is the expanded uncertainty (coverage factor k = {np.median(k):.2f}, about 95 %); '< x' is an upper limit.")
+    from .quantify import FLAG_TEXT
+
+    used = sorted({f for scan in result.scan_flags for f in scan} | {f for scan in result.flags for per in scan for f in per})
+    for flag in used:
+        lines.append(f"{flag}: {FLAG_TEXT[flag]}")
     return "\n".join(lines)

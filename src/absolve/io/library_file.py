@@ -6,7 +6,7 @@ Layout (format ``absolve-library``, version 1)::
      "wavelengths_nm": [...],
      "components": [{"name": ..., "molar_mass": ..., "absorptivity": [...], "std_error": [...],
                      "calibration": {...}}],
-     "linear_limit_absorbance": 1.2, "residual_dof": 14,
+     "linear_limit_absorbance": 1.2, "residual_dof": 14, "stray_light_fraction": 0.0,
      "noise_model": {"floor": ..., "proportional": ..., "correlation_length_nm": ...} | null,
      "provenance": {...}}
 """
@@ -86,6 +86,7 @@ def library_to_json(library: ReferenceLibrary) -> str:
         "wavelengths_nm": [float(v) for v in library.wavelengths],
         "linear_limit_absorbance": _finite_or_none(library.linear_limit_absorbance),
         "residual_dof": int(library.residual_dof),
+        "stray_light_fraction": float(library.stray_light),
         "noise_model": None
         if noise is None
         else {"floor": noise.floor, "proportional": noise.proportional, "correlation_length_nm": noise.correlation_length_nm},
@@ -147,6 +148,8 @@ def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
     text = read_text(file)
     try:
         document = json.loads(text)
+    except RecursionError:
+        raise AbsolveError("nested too deeply to be a library", fix="pass a file written by 'absolve calibrate'", file=file) from None
     except json.JSONDecodeError as error:
         raise AbsolveError(
             f"not valid JSON ({error.msg})",
@@ -164,7 +167,7 @@ def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
             file=file,
         )
     version = document.get("version")
-    if version != FORMAT_VERSION:
+    if version != FORMAT_VERSION or isinstance(version, bool):
         raise AbsolveError(
             f"library format version {version!r} is not supported (this absolve reads version {FORMAT_VERSION})",
             fix="rebuild the library with this version of absolve, or upgrade absolve",
@@ -196,10 +199,14 @@ def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
     noise = None
     if noise_doc is not None:
         values = {key: read.number(read.get(noise_doc, key, "noise_model."), "noise_model." + key) for key in ("floor", "proportional", "correlation_length_nm")}
-        noise = NoiseModel(**values)  # type: ignore[arg-type]
+        try:
+            noise = NoiseModel(**values)  # type: ignore[arg-type]
+        except AbsolveError as error:
+            raise read.fail("noise_model", error.problem) from None
     dof = document.get("residual_dof", 0)
     if not isinstance(dof, int) or isinstance(dof, bool) or dof < 0:
         raise read.fail("residual_dof", f"expected a whole number >= 0, found {dof!r}")
+    stray = read.number(document.get("stray_light_fraction", 0.0), "stray_light_fraction")
     provenance = document.get("provenance") or {}
     if not isinstance(provenance, dict):
         raise read.fail("provenance", "expected an object")
@@ -212,6 +219,7 @@ def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
             components=tuple(components),
             linear_limit_absorbance=limit,
             noise=noise,
+            stray_light=stray,  # type: ignore[arg-type]
             residual_dof=dof,
             provenance=provenance,
         )

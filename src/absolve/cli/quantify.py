@@ -1,0 +1,47 @@
+"""``absolve quantify``: concentrations of the library's components in sample scans."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+
+from ..errors import AbsolveError
+from ..workflow import QuantifyRequest, run_quantify
+from ._app import app
+from ._common import parse_range
+
+
+@app.command()
+def quantify(
+    scans: Annotated[list[Path], typer.Argument(help="Sample scan files (tables or JCAMP-DX).", show_default=False)],
+    out: Annotated[Path, typer.Option("--out", help="Folder for results.csv, fit.csv, results.json, report.html.")],
+    library: Annotated[Optional[Path], typer.Option("--library", help="Library file from 'absolve calibrate'.")] = None,
+    model: Annotated[Optional[Path], typer.Option("--model", help="PLS model file from 'absolve train'.")] = None,
+    baseline: Annotated[str, typer.Option("--baseline", help="Baseline terms: none, offset or linear.")] = "offset",
+    wavelength_range: Annotated[Optional[str], typer.Option("--range", help="Use wavelengths LOW:HIGH nm.")] = None,
+    path_length: Annotated[float, typer.Option("--path-length", help="Cell path length in cm.")] = 1.0,
+    dilution: Annotated[float, typer.Option("--dilution", help="Dilution factor of the samples before scanning.")] = 1.0,
+    path_tolerance: Annotated[float, typer.Option("--path-length-tolerance", help="Relative standard uncertainty of the path length.")] = 0.0,
+    dilution_tolerance: Annotated[float, typer.Option("--dilution-tolerance", help="Relative standard uncertainty of the dilution.")] = 0.0,
+    ceiling: Annotated[float, typer.Option("--ceiling", help="Instrument ceiling: absorbance above it is not used.")] = 2.0,
+    quantity: Annotated[Optional[str], typer.Option("--quantity", help="absorbance, transmittance or percent-transmittance.")] = None,
+    decimal: Annotated[str, typer.Option("--decimal", help="Decimal mark of the scan tables ('.' or ',').")] = ".",
+    blank: Annotated[Optional[Path], typer.Option("--blank", help="Blank scan(s) to subtract first.")] = None,
+    force: Annotated[bool, typer.Option("--force", help="Replace existing result files.")] = False,
+    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")] = False,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the results as JSON instead of a table.")] = False,
+) -> None:
+    """Quantify each component in every scan, with uncertainties, diagnostics and a report."""
+    if (library is None) == (model is None):
+        raise AbsolveError("quantify needs exactly one of --library or --model", fix="e.g. --library lib.json")
+    request = QuantifyRequest(
+        scans=list(scans), out=out, library=library, model=model, baseline=baseline,
+        wavelength_range=parse_range(wavelength_range), path_length=path_length, dilution=dilution,
+        path_length_tolerance=path_tolerance, dilution_tolerance=dilution_tolerance, ceiling=ceiling,
+        quantity=quantity, decimal=decimal, blank=blank, force=force,
+    )
+    outcome = run_quantify(request)
+    if not quiet:
+        typer.echo(outcome.json_text if as_json else outcome.text)

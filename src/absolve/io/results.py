@@ -1,0 +1,93 @@
+"""Result files of a quantification: results.csv, fit.csv, fitted/residual spectra, results.json.
+
+All text is produced in memory with fixed float formatting and stable
+ordering, so the same inputs give byte-identical files; time stamps live only
+in the provenance of results.json and the report.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from typing import Any
+
+import numpy as np
+
+from ..quantify import MixtureResult
+
+__all__ = ["results_csv", "fit_csv", "spectra_csv", "results_json"]
+
+
+def _number(value: float, spec: str = ".6g") -> str:
+    return format(float(value), spec) if np.isfinite(value) else ""
+
+
+def _writer() -> tuple[io.StringIO, Any]:
+    buffer = io.StringIO()
+    return buffer, csv.writer(buffer, lineterminator="\n")
+
+
+def results_csv(result: MixtureResult) -> str:
+    """One row per scan and component: concentration, uncertainties, LOD, flags."""
+    buffer, writer = _writer()
+    writer.writerow(
+        ["scan", "component", "concentration", "std_uncertainty", "expanded_uncertainty", "coverage_factor",
+         "unit", "upper_limit", "lod", "loq", "flags"]
+    )
+    for i, scan in enumerate(result.scan_names):
+        for j, component in enumerate(result.components):
+            writer.writerow(
+                [
+                    scan, component,
+                    _number(result.concentration[i, j]), _number(result.std_uncertainty[i, j]),
+                    _number(result.expanded_uncertainty[i, j]), _number(result.coverage_factor[i, j], ".4g"),
+                    result.unit, _number(result.upper_limit[i, j]), _number(result.lod[i, j]), _number(result.loq[i, j]),
+                    ";".join(result.flags[i][j]),
+                ]
+            )
+    return buffer.getvalue()
+
+
+def fit_csv(result: MixtureResult, extra: dict[str, list[str]] | None = None) -> str:
+    """One row per scan: residual size, conditioning, interferent verdict, exclusions, flags.
+
+    ``extra`` adds columns (name -> one text per scan), e.g. screening diagnoses.
+    """
+    buffer, writer = _writer()
+    extra = extra or {}
+    writer.writerow(
+        ["scan", "rms_residual", "condition_number", "interferent", "residual_p_value", "residual_dof",
+         "noise_scale", "points_used", "points_excluded", *extra, "flags"]
+    )
+    excluded = sum(result.excluded.values())
+    for i, scan in enumerate(result.scan_names):
+        writer.writerow(
+            [
+                scan, _number(result.rms_residual[i]), _number(result.condition_number[i], ".4g"),
+                "true" if result.interferent[i] else "false", _number(result.residual_p_value[i], ".4g"),
+                int(result.residual_dof[i]), _number(result.noise_scale[i], ".4g"),
+                int(result.used[i].sum()), int(excluded[i]), *(values[i] for values in extra.values()),
+                ";".join(result.scan_flags[i]),
+            ]
+        )
+    return buffer.getvalue()
+
+
+def spectra_csv(result: MixtureResult, which: str) -> str:
+    """Fitted or residual spectra in the wide scan-table layout (empty cells where a point was not used)."""
+    values = result.fitted if which == "fitted" else result.residuals
+    buffer, writer = _writer()
+    writer.writerow(["wavelength_nm", *result.scan_names])
+    formatted = np.where(np.isfinite(values), np.char.mod("%.6f", np.nan_to_num(values)), "")
+    for j, wavelength in enumerate(result.wavelengths):
+        writer.writerow([f"{wavelength:g}", *formatted[:, j]])
+    return buffer.getvalue()
+
+
+def results_json(result: MixtureResult, provenance: dict[str, Any], extra: dict[str, Any] | None = None) -> str:
+    """Everything, including the uncertainty budget, as JSON."""
+    document = {"format": "absolve-results", "version": 1, **result.summary(), "provenance": provenance}
+    if extra:
+        document.update(extra)
+    return json.dumps(document, indent=1, allow_nan=False) + "\n"

@@ -1,0 +1,62 @@
+"""Correlated, absorbance-dependent noise along wavelength: covariance and whitening.
+
+Residual noise of a spectrophotometer is modelled as heteroscedastic
+first-order autoregressive (AR(1)) along the used wavelengths: standard
+deviation ``sigma_t`` per point and correlation ``phi_t`` between point
+``t - 1`` and ``t``, ``phi_t = exp(-gap_t / L)`` for a gap of ``gap_t`` nm
+and correlation length ``L`` (gaps left by excluded points are handled
+exactly). With ``R`` the AR(1) correlation matrix and ``R = C C^T`` its
+Cholesky factor, ``x = C e`` turns white noise ``e`` into AR(1) noise; the
+inverse is the Prais-Winsten transform. Both are O(n) recursions, so a
+batch of scans never forms an n x n matrix.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numpy.typing import NDArray
+
+__all__ = ["ar1_coefficients", "whiten", "correlated_norm_squared", "effective_points"]
+
+
+def ar1_coefficients(wavelengths: NDArray[np.float64], correlation_length_nm: float) -> NDArray[np.float64]:
+    """Lag-one correlation ``phi_t`` between consecutive points (``phi_0 = 0``), shape (n,)."""
+    phi = np.zeros(wavelengths.size)
+    if correlation_length_nm > 0 and wavelengths.size > 1:
+        phi[1:] = np.exp(-np.diff(wavelengths) / correlation_length_nm)
+    return np.minimum(phi, 0.999)
+
+
+def whiten(standardised: NDArray[np.float64], phi: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Prais-Winsten transform of AR(1) rows (last axis): returns white, unit-variance rows.
+
+    ``standardised`` holds values already divided by their standard deviation.
+    """
+    out = np.empty_like(standardised)
+    out[..., 0] = standardised[..., 0]
+    scale = np.sqrt(1.0 - phi[1:] ** 2)
+    out[..., 1:] = (standardised[..., 1:] - phi[1:] * standardised[..., :-1]) / scale
+    return out
+
+
+def correlated_norm_squared(rows: NDArray[np.float64], phi: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Inner products ``v R w^T`` for all pairs of rows along the second-to-last axis.
+
+    ``rows`` has shape (..., m, n); the result (..., m, m) is ``rows R rows^T``
+    with ``R`` the AR(1) correlation matrix of ``phi``. Computed as
+    ``(rows C)(rows C)^T`` where ``rows C`` is a backward recursion.
+    """
+    n = rows.shape[-1]
+    accumulated = np.empty_like(rows)
+    accumulated[..., n - 1] = rows[..., n - 1]
+    for t in range(n - 2, -1, -1):
+        accumulated[..., t] = rows[..., t] + phi[t + 1] * accumulated[..., t + 1]
+    factor = np.ones(n)
+    factor[1:] = np.sqrt(1.0 - phi[1:] ** 2)
+    transformed = accumulated * factor
+    return np.einsum("...it,...jt->...ij", transformed, transformed)
+
+
+def effective_points(phi: NDArray[np.float64]) -> float:
+    """Number of independent points the correlated ones are worth: sum of (1 - phi)/(1 + phi)."""
+    return float(1.0 + np.sum((1.0 - phi[1:]) / (1.0 + phi[1:])))

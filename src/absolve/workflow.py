@@ -1,0 +1,113 @@
+"""Whole jobs from files to files: read inputs, run the computation, write every output together.
+
+The command line calls one function here per verb; the functions take paths
+and options and return the texts to show, so they are testable without a
+terminal. All outputs are prepared in memory first and written together (each
+file atomically) only when everything has succeeded.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from .errors import AbsolveError
+from .io.files import check_writable, write_all
+from .io.library_file import read_library
+from .io.results import fit_csv, results_csv, results_json, spectra_csv
+from .io.tables import read_scans
+from .quantify import MixtureResult, quantify
+from .report.html import build_report
+
+__all__ = ["QuantifyRequest", "QuantifyOutcome", "run_quantify", "RESULT_FILES"]
+
+RESULT_FILES = ("results.csv", "fit.csv", "fitted.csv", "residuals.csv", "results.json", "report.html")
+
+
+@dataclass
+class QuantifyRequest:
+    """Everything ``absolve quantify`` was asked to do."""
+
+    scans: list[Path]
+    out: Path
+    library: Path | None = None
+    model: Path | None = None
+    baseline: str = "offset"
+    wavelength_range: tuple[float | None, float | None] = (None, None)
+    path_length: float = 1.0
+    dilution: float = 1.0
+    path_length_tolerance: float = 0.0
+    dilution_tolerance: float = 0.0
+    ceiling: float = 2.0
+    quantity: str | None = None
+    decimal: str = "."
+    blank: Path | None = None
+    force: bool = False
+    extra_sections: list[tuple[str, str]] = field(default_factory=list)
+
+
+@dataclass(frozen=True)
+class QuantifyOutcome:
+    """What a quantification run produced: the result and the texts to show."""
+
+    result: MixtureResult
+    text: str
+    json_text: str
+    written: tuple[Path, ...]
+
+
+def _options(request: QuantifyRequest) -> dict[str, Any]:
+    return {
+        "baseline": request.baseline,
+        "range": list(request.wavelength_range),
+        "path_length_cm": request.path_length,
+        "dilution": request.dilution,
+        "path_length_tolerance": request.path_length_tolerance,
+        "dilution_tolerance": request.dilution_tolerance,
+        "ceiling": request.ceiling,
+        "quantity": request.quantity,
+    }
+
+
+def run_quantify(request: QuantifyRequest) -> QuantifyOutcome:
+    """Read scans and a library, quantify, write the result files, and return the summary texts."""
+    from .cli._common import provenance
+
+    targets = [request.out / name for name in RESULT_FILES]
+    if request.out.exists() and not request.out.is_dir():
+        raise AbsolveError(f"{request.out} is a file, not a folder", fix="give --out a folder name")
+    check_writable(targets, force=request.force)
+    if request.model is not None:
+        raise AbsolveError("--model is not available yet in this version", fix="use --library")
+    assert request.library is not None
+    library = read_library(request.library)
+    spectra = read_scans(request.scans, decimal=request.decimal, quantity=request.quantity)  # type: ignore[arg-type]
+    inputs: list[Path] = [*request.scans, request.library]
+    if request.blank is not None:
+        spectra = spectra.subtract_blank(read_scans([request.blank], decimal=request.decimal, quantity=request.quantity))  # type: ignore[arg-type]
+        inputs.append(request.blank)
+    result = quantify(
+        spectra,
+        library,
+        baseline=request.baseline,  # type: ignore[arg-type]
+        wavelength_range=request.wavelength_range,
+        path_length=request.path_length,
+        dilution=request.dilution,
+        ceiling=request.ceiling,
+        path_length_tolerance=request.path_length_tolerance,
+        dilution_tolerance=request.dilution_tolerance,
+    )
+    record = provenance(inputs, _options(request))
+    files = {
+        targets[0]: results_csv(result),
+        targets[1]: fit_csv(result),
+        targets[2]: spectra_csv(result, "fitted"),
+        targets[3]: spectra_csv(result, "residuals"),
+        targets[4]: results_json(result, record),
+        targets[5]: build_report(result, library, record, sections=request.extra_sections),
+    }
+    write_all(files, force=request.force)
+    text = result.report() + f"\nresults written to {request.out}/ ({', '.join(RESULT_FILES)})"
+    return QuantifyOutcome(result, text, json.dumps(result.summary(), indent=1, allow_nan=False), tuple(files))
