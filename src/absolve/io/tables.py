@@ -343,7 +343,7 @@ def read_scans(
 
 
 def _format_float(value: float) -> str:
-    return "" if not np.isfinite(value) else f"{value:.6f}"
+    return "" if not np.isfinite(value) else f"{value + 0.0:.6f}"
 
 
 def format_scan_table(spectra: Spectra, *, first_header: str = "wavelength_nm") -> str:
