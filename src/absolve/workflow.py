@@ -9,14 +9,15 @@ file atomically) only when everything has succeeded.
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
 from .errors import AbsolveError
 from .io.files import check_writable, write_all
 from .io.library_file import read_library
-from .io.results import fit_csv, results_csv, results_json, spectra_csv
+from .inverse import InversePrediction
+from .io.results import fit_csv, prediction_fit_csv, prediction_results_csv, results_csv, results_json, spectra_csv
 from .io.tables import read_scans
 from .quantify import MixtureResult, quantify
 from .report.html import build_report
@@ -52,7 +53,7 @@ class QuantifyRequest:
 class QuantifyOutcome:
     """What a quantification run produced: the result and the texts to show."""
 
-    result: MixtureResult
+    result: MixtureResult | InversePrediction
     text: str
     json_text: str
     written: tuple[Path, ...]
@@ -80,7 +81,7 @@ def run_quantify(request: QuantifyRequest) -> QuantifyOutcome:
         raise AbsolveError(f"{request.out} is a file, not a folder", fix="give --out a folder name")
     check_writable(targets, force=request.force)
     if request.model is not None:
-        raise AbsolveError("--model is not available yet in this version", fix="use --library")
+        return _run_model(request, targets)
     assert request.library is not None
     library = read_library(request.library)
     spectra = read_scans(request.scans, decimal=request.decimal, quantity=request.quantity)  # type: ignore[arg-type]
@@ -111,3 +112,37 @@ def run_quantify(request: QuantifyRequest) -> QuantifyOutcome:
     write_all(files, force=request.force)
     text = result.report() + f"\nresults written to {request.out}/ ({', '.join(RESULT_FILES)})"
     return QuantifyOutcome(result, text, json.dumps(result.summary(), indent=1, allow_nan=False), tuple(files))
+
+
+def _run_model(request: QuantifyRequest, targets: list[Path]) -> QuantifyOutcome:
+    """Quantify with a PLS model: the same result files, Q and T^2 in place of the residual test."""
+    from .cli._common import provenance
+    from .io.model_file import read_model
+    from .report.html import build_model_report
+
+    assert request.model is not None
+    model = read_model(request.model)
+    spectra = read_scans(request.scans, decimal=request.decimal, quantity=request.quantity)  # type: ignore[arg-type]
+    inputs: list[Path] = [*request.scans, request.model]
+    if request.blank is not None:
+        spectra = spectra.subtract_blank(read_scans([request.blank], decimal=request.decimal, quantity=request.quantity))  # type: ignore[arg-type]
+        inputs.append(request.blank)
+    prediction = model.predict(spectra, path_length_cm=request.path_length)
+    if request.dilution != 1.0:
+        prediction = replace(
+            prediction,
+            concentration=prediction.concentration * request.dilution,
+            std_uncertainty=prediction.std_uncertainty * request.dilution,
+        )
+    record = provenance(inputs, _options(request))
+    n_points = int(model.wavelengths_.size)
+    document = {"format": "absolve-results", "version": 1, **prediction.summary(), "provenance": record}
+    files = {
+        targets[0]: prediction_results_csv(prediction),
+        targets[1]: prediction_fit_csv(prediction, n_points),
+        targets[4]: json.dumps(document, indent=1, allow_nan=False) + "\n",
+        targets[5]: build_model_report(prediction, record),
+    }
+    write_all(files, force=request.force)
+    text = prediction.report() + f"\nresults written to {request.out}/ ({', '.join(p.name for p in files)})"
+    return QuantifyOutcome(prediction, text, json.dumps(prediction.summary(), indent=1, allow_nan=False), tuple(files))

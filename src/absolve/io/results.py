@@ -14,9 +14,10 @@ from typing import Any
 
 import numpy as np
 
+from ..inverse import InversePrediction
 from ..quantify import MixtureResult
 
-__all__ = ["results_csv", "fit_csv", "spectra_csv", "results_json"]
+__all__ = ["results_csv", "fit_csv", "spectra_csv", "results_json", "prediction_results_csv", "prediction_fit_csv"]
 
 
 def _number(value: float, spec: str = ".6g") -> str:
@@ -91,3 +92,53 @@ def results_json(result: MixtureResult, provenance: dict[str, Any], extra: dict[
     if extra:
         document.update(extra)
     return json.dumps(document, indent=1, allow_nan=False) + "\n"
+
+
+def prediction_results_csv(prediction: InversePrediction) -> str:
+    """results.csv for a PLS prediction, in the same columns as for a library.
+
+    The coverage factor is 2 (the leverage-based uncertainty has many degrees
+    of freedom); upper limit, LOD and LOQ are not defined for the inverse model
+    and stay empty.
+    """
+    buffer, writer = _writer()
+    writer.writerow(
+        ["scan", "component", "concentration", "std_uncertainty", "expanded_uncertainty", "coverage_factor",
+         "unit", "upper_limit", "lod", "loq", "flags"]
+    )
+    for i, scan in enumerate(prediction.names):
+        for j, component in enumerate(prediction.components):
+            flags = []
+            if not prediction.complete[i]:
+                flags.append("too-few-points")
+            if prediction.beyond_range[i, j]:
+                flags.append("beyond-calibration")
+            u = prediction.std_uncertainty[i, j]
+            writer.writerow(
+                [scan, component, _number(prediction.concentration[i, j]), _number(u), _number(2.0 * u), "2",
+                 prediction.unit, "", "", "", ";".join(flags)]
+            )
+    return buffer.getvalue()
+
+
+def prediction_fit_csv(prediction: InversePrediction, n_points: int) -> str:
+    """fit.csv for a PLS prediction: Q residual and Hotelling T^2 against their limits.
+
+    ``rms_residual`` is sqrt(Q / n_points), the root mean square of the spectral
+    residual outside the model over the model's ``n_points`` wavelengths.
+    """
+    buffer, writer = _writer()
+    writer.writerow(
+        ["scan", "rms_residual", "condition_number", "interferent", "q_residual", "q_limit", "hotelling_t2", "t2_limit", "flags"]
+    )
+    for i, scan in enumerate(prediction.names):
+        outside = bool(prediction.outside[i])
+        flags = "outside-model" if outside else ""
+        if not prediction.complete[i]:
+            flags = "too-few-points"
+        writer.writerow(
+            [scan, _number(np.sqrt(prediction.q_residual[i] / n_points)), "",
+             "true" if outside else "false", _number(prediction.q_residual[i]), _number(prediction.q_limit),
+             _number(prediction.hotelling_t2[i]), _number(prediction.t2_limit), flags]
+        )
+    return buffer.getvalue()

@@ -8,10 +8,11 @@ from typing import Any
 
 import numpy as np
 
+from ..inverse import InversePrediction
 from ..library import ReferenceLibrary
 from ..quantify import FLAG_TEXT, MixtureResult
 
-__all__ = ["build_report"]
+__all__ = ["build_model_report", "build_report"]
 
 _STYLE = """
 body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:68rem;margin:1.5rem auto;padding:0 1rem;color:#1b1b1b;line-height:1.45}
@@ -156,3 +157,41 @@ def _provenance(provenance: dict[str, Any]) -> str:
         f"<p class='note'>absolve {_e(provenance.get('version', '?'))}, Python {_e(provenance.get('python', '?'))}, "
         f"run {_e(provenance.get('created', '?'))}.</p><table><tr><th>input</th><th>SHA-256</th></tr>{inputs}</table>"
     )
+
+
+def build_model_report(prediction: InversePrediction, provenance: dict[str, Any]) -> str:
+    """HTML report of a PLS prediction: results with uncertainties, Q and T^2 against their limits."""
+    head = "".join(f"<th>{_e(c)} ({_e(prediction.unit)})</th>" for c in prediction.components)
+    rows = []
+    for i, name in enumerate(prediction.names):
+        cells = "".join(
+            f"<td>{_num(prediction.concentration[i, j])} ± {_num(2 * prediction.std_uncertainty[i, j], '.2g')}"
+            + (' <span class="flag">beyond-calibration</span>' if prediction.beyond_range[i, j] else "")
+            + "</td>"
+            for j in range(len(prediction.components))
+        )
+        verdict = '<span class="flag">outside-model</span>' if prediction.outside[i] else '<span class="ok">ok</span>'
+        rows.append(
+            f"<tr><td>{_e(name)}</td>{cells}<td>{_num(prediction.q_residual[i], '.3g')}</td>"
+            f"<td>{_num(prediction.hotelling_t2[i], '.3g')}</td><td>{verdict}</td></tr>"
+        )
+    body = (
+        f"<table><tr><th>scan</th>{head}<th>Q (limit {_num(prediction.q_limit, '.3g')})</th>"
+        f"<th>T² (limit {_num(prediction.t2_limit, '.3g')})</th><th>flags</th></tr>{''.join(rows)}</table>"
+        f"<p class='note'>± is twice the standard uncertainty ({_e(prediction.uncertainty_basis)}). "
+        "outside-model: the scan is unlike the training scans (Q or T² beyond its limit); do not trust its values.</p>"
+    )
+    return "\n".join(
+        [
+            "<!DOCTYPE html>",
+            '<html lang="en"><head><meta charset="utf-8"><meta name="viewport" content="width=device-width, initial-scale=1">',
+            f"<title>PLS quantification</title><style>{_STYLE}</style></head><body>",
+            "<h1>PLS quantification</h1><h2>Results</h2>",
+            body,
+            "<h2>Provenance</h2>",
+            _provenance(provenance),
+            "<h2>Cautions</h2>",
+            f'<p class="caution">{_e(CAUTIONS)}</p>',
+            "</body></html>",
+        ]
+    ) + "\n"
