@@ -135,16 +135,14 @@ class Calibration:
         if self.detect_working_range:
             # Start from the low-absorbance points, where the law holds on any
             # instrument, so that bent high points cannot tilt the reference line.
+            # Departures are judged against this line only: refitting with the
+            # points up to a found limit would let slightly bent points lower
+            # the line, move the limit up, and repeat.
             fit = _fit_per_wavelength(design, absorbance, trusted & (absorbance <= _SAFE_START))
-            for _ in range(6):
-                limits = {k: _departure(fit, absorbance, trusted, conc[:, k] > 0, self.linearity_tolerance) for k in range(len(names))}
-                found = [value for value in limits.values() if value is not None]
-                new_limit = min(found) if found else None
-                mask = trusted if new_limit is None else trusted & (absorbance <= new_limit)
-                fit = _fit_per_wavelength(design, absorbance, mask)
-                if new_limit == limit:
-                    break
-                limit = new_limit
+            limits = {k: _departure(fit, absorbance, trusted, conc[:, k] > 0, self.linearity_tolerance) for k in range(len(names))}
+            found = [value for value in limits.values() if value is not None]
+            limit = min(found) if found else None
+            fit = _fit_per_wavelength(design, absorbance, trusted if limit is None else trusted & (absorbance <= limit))
         used = trusted if limit is None else trusted & (absorbance <= limit)
         noise = _noise_model(fit, scans.wavelengths)
         self.linear_limit_ = limit
