@@ -1,0 +1,1251 @@
+"""Interferent screening: does a scan hold something the reference library does not explain?
+
+After a mixture fit, the residual ``measured - fitted`` should be instrument
+noise and nothing else. Real photometric noise grows with absorbance and is
+correlated along wavelength, so a plain chi-square on raw residuals either
+raises false alarms (correlation inflates it) or misses real interferents
+(a loose threshold). This module
+
+1. whitens the residual with the instrument :class:`~absolve.library.NoiseModel`:
+   divide by the noise standard deviation at the fitted absorbance, then undo the
+   first-order autoregressive correlation along wavelength (the Prais-Winsten
+   transform, i.e. the inverse Cholesky factor of the AR(1) covariance);
+2. projects the whitened residual onto the orthogonal complement of the whitened
+   design, which removes exactly the degrees of freedom the fit used, whatever
+   fitting method (non-negative or not) produced the residual;
+3. splits what is left into a smooth part (a cosine basis of a few dozen terms,
+   whitened and orthogonalised the same way) and a rough part, and tests the
+   smooth share with an F ratio. Interferents, turbidity, wavelength shifts and
+   stray light all leave *smooth* residuals, while noise spreads evenly over all
+   directions, so this test has far more power than an omnibus chi-square; and
+   because it is a ratio of two energies measured in the same scan, an error in
+   the noise model's overall scale cancels;
+4. adds an omnibus chi-square on the whole whitened residual (against a noise
+   level ``noise_tolerance`` times the model's, so only gross excess counts),
+   for rough structure and noisy scans, combined by a weighted Bonferroni rule.
+
+Flagged scans get a :class:`Diagnosis`: the smooth unexplained residual is
+matched against shape templates (a foreign band, scattering, a wavelength
+shift, a shortfall at high absorbance) and the best match is named with how
+sure the match is. :func:`explain_with_suspects` refits with candidate
+absorbers added and tests each with a boundary-aware F test.
+
+References
+----------
+Box, G. E. P. (1954). Some theorems on quadratic forms applied in the study of
+analysis of variance problems, I. Ann. Math. Statist. 25, 290-302.
+Jackson, J. E. & Mudholkar, G. S. (1979). Control procedures for residuals
+associated with principal component analysis. Technometrics 21, 341-349.
+ASTM E1655, Standard practices for infrared multivariate quantitative analysis
+(spectral residual and outlier checks on prediction samples).
+Durbin, J. & Watson, G. S. (1950). Testing for serial correlation in least
+squares regression. Biometrika 37, 409-428; Ljung, G. M. & Box, G. E. P. (1978).
+On a measure of lack of fit in time series models. Biometrika 65, 297-303.
+Prais, S. J. & Winsten, C. B. (1954). Trend estimators and serial correlation.
+Cowles Commission discussion paper 383.
+Self, S. G. & Liang, K.-Y. (1987). Asymptotic properties of maximum likelihood
+estimators and likelihood ratio tests under nonstandard conditions. JASA 82, 605-610.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Literal
+
+import numpy as np
+import scipy.integrate
+import scipy.linalg
+import scipy.optimize
+import scipy.stats
+from numpy.typing import ArrayLike, NDArray
+from threadpoolctl import threadpool_limits
+
+from .errors import AbsolveError
+from .library import NoiseModel
+
+__all__ = [
+    "Diagnosis",
+    "DiagnosisKind",
+    "Screening",
+    "SuspectReport",
+    "explain_with_suspects",
+    "prewhiten",
+    "q_limit",
+    "screen_residuals",
+    "smooth_basis",
+]
+
+DiagnosisKind = Literal["foreign-band", "scatter", "wavelength-shift", "nonlinearity", "unclassified"]
+Confidence = Literal["high", "moderate", "low"]
+
+# Fewer rough degrees of freedom than this leave the F ratio's denominator too
+# unstable to be worth a p-value; such scans are reported as untestable.
+_MIN_ROUGH_DOF = 5
+# Scans are processed in blocks so the stacked whitened bases stay small in memory.
+_BLOCK = 256
+# Singular values below this fraction of a matrix's Frobenius norm count as zero.
+_RANK_TOL = 1e-9
+# Width of the narrowest structure the default cosine basis resolves, in nm.
+_SMOOTH_SCALE_NM = 15.0
+# Band widths (Gaussian standard deviation, nm) and scattering exponents tried by the diagnosis.
+_BAND_WIDTHS_NM = (3.0, 4.5, 6.5, 9.0, 13.0, 18.0, 25.0, 35.0, 50.0)
+_SCATTER_EXPONENTS = (0.5, 1.0, 1.5, 2.0, 3.0, 4.0, 5.0)
+_FAMILY_WORDS = {
+    "foreign-band": "a foreign absorption band",
+    "scatter": "scattering (turbidity)",
+    "wavelength-shift": "a wavelength-scale shift",
+    "nonlinearity": "a shortfall at high absorbance",
+}
+
+
+# --------------------------------------------------------------------------- results
+
+
+@dataclass(frozen=True)
+class Diagnosis:
+    """What the unexplained part of one flagged scan looks like.
+
+    Attributes
+    ----------
+    kind : {"foreign-band", "scatter", "wavelength-shift", "nonlinearity", "unclassified"}
+        The shape that best matches the smooth unexplained residual.
+    window_nm : tuple of float
+        Contiguous wavelength range around ``peak_nm`` where the matched disturbance
+        is at least half its largest size.
+    peak_nm : float
+        Wavelength of the largest matched disturbance.
+    size_absorbance : float
+        Largest absolute absorbance of the matched disturbance (for "unclassified":
+        of the smooth unexplained residual). Signed: negative means a shortfall.
+    residual_absorbance : float
+        Largest absolute absorbance of the smooth residual the library cannot
+        explain (part of a disturbance that resembles library components is
+        absorbed by the fit and does not show here).
+    confidence : {"high", "moderate", "low"}
+        How sure the shape match is (not whether something is there: that is the
+        screening p-value).
+    share : float
+        Fraction of the smooth unexplained residual energy the matched shape explains.
+    runner_up : str or None
+        The next best shape family.
+    runner_up_share : float
+        Its share.
+    amplitude_z : float
+        Matched amplitude over its standard error.
+    detail : dict
+        Shape parameters: ``center_nm`` and ``width_nm`` (band), ``exponent``
+        (scatter), ``shift_nm`` and ``shift_se_nm`` (shift), ``shape`` (nonlinearity).
+    message : str
+        One plain-language sentence, saying how sure it is.
+    """
+
+    kind: DiagnosisKind
+    window_nm: tuple[float, float]
+    peak_nm: float
+    size_absorbance: float
+    residual_absorbance: float
+    confidence: Confidence
+    share: float
+    runner_up: str | None
+    runner_up_share: float
+    amplitude_z: float
+    detail: Mapping[str, float | str] = field(default_factory=dict)
+    message: str = ""
+
+    def summary(self) -> dict[str, Any]:
+        """JSON-safe dictionary of every field."""
+        return {
+            "kind": self.kind,
+            "window_nm": [float(self.window_nm[0]), float(self.window_nm[1])],
+            "peak_nm": float(self.peak_nm),
+            "size_absorbance": float(self.size_absorbance),
+            "residual_absorbance": float(self.residual_absorbance),
+            "confidence": self.confidence,
+            "share": float(self.share),
+            "runner_up": self.runner_up,
+            "runner_up_share": float(self.runner_up_share),
+            "amplitude_z": float(self.amplitude_z),
+            "detail": {k: (v if isinstance(v, str) else float(v)) for k, v in self.detail.items()},
+            "message": self.message,
+        }
+
+
+def _nan_to_none(value: float) -> float | None:
+    return None if not np.isfinite(value) else float(value)
+
+
+@dataclass(frozen=True, eq=False)
+class Screening:
+    """Result of :func:`screen_residuals` for a batch of scans.
+
+    Attributes
+    ----------
+    statistic : ndarray, shape (n_scans,)
+        Smooth-structure F ratio: energy per degree of freedom of the whitened
+        residual in the smooth subspace over that in the rest. About 1 for noise.
+    p_value : ndarray, shape (n_scans,)
+        Combined p-value (weighted Bonferroni of ``smooth_p`` and ``omnibus_p``);
+        NaN where the scan has too few usable points to test.
+    flagged : ndarray of bool, shape (n_scans,)
+        ``p_value < alpha``.
+    alpha : float
+        False-alarm rate the test was run at.
+    method : str
+        Description of the test.
+    diagnoses : tuple of (Diagnosis or None)
+        One per scan; None for scans not flagged.
+    smooth_p, omnibus_p : ndarray, shape (n_scans,)
+        p-values of the smooth F test and of the omnibus chi-square (the latter
+        against ``noise_tolerance`` times the modelled noise).
+    noise_ratio : ndarray, shape (n_scans,)
+        Root-mean-square of the rough whitened residual: observed noise over the
+        noise model's (1 when the model is right; it has no bearing on the F test).
+    durbin_watson : ndarray, shape (n_scans,)
+        Durbin-Watson statistic of the whitened, projected residual (about 2 for
+        white noise, towards 0 for smooth structure).
+    smooth_dof, rough_dof : ndarray of int, shape (n_scans,)
+        Degrees of freedom of the F ratio.
+    """
+
+    statistic: NDArray[np.float64]
+    p_value: NDArray[np.float64]
+    flagged: NDArray[np.bool_]
+    alpha: float
+    method: str
+    diagnoses: tuple[Diagnosis | None, ...]
+    smooth_p: NDArray[np.float64]
+    omnibus_p: NDArray[np.float64]
+    noise_ratio: NDArray[np.float64]
+    durbin_watson: NDArray[np.float64]
+    smooth_dof: NDArray[np.int64]
+    rough_dof: NDArray[np.int64]
+
+    @property
+    def n_scans(self) -> int:
+        """Number of scans screened."""
+        return int(self.statistic.size)
+
+    def summary(self) -> dict[str, Any]:
+        """JSON-safe summary: settings, counts and one record per scan."""
+        scans = []
+        for i in range(self.n_scans):
+            diagnosis = self.diagnoses[i]
+            scans.append(
+                {
+                    "statistic": _nan_to_none(self.statistic[i]),
+                    "p_value": _nan_to_none(self.p_value[i]),
+                    "flagged": bool(self.flagged[i]),
+                    "smooth_p": _nan_to_none(self.smooth_p[i]),
+                    "omnibus_p": _nan_to_none(self.omnibus_p[i]),
+                    "noise_ratio": _nan_to_none(self.noise_ratio[i]),
+                    "durbin_watson": _nan_to_none(self.durbin_watson[i]),
+                    "smooth_dof": int(self.smooth_dof[i]),
+                    "rough_dof": int(self.rough_dof[i]),
+                    "diagnosis": None if diagnosis is None else diagnosis.summary(),
+                }
+            )
+        return {
+            "method": self.method,
+            "alpha": float(self.alpha),
+            "n_scans": self.n_scans,
+            "n_flagged": int(self.flagged.sum()),
+            "n_untestable": int(np.isnan(self.p_value).sum()),
+            "scans": scans,
+        }
+
+    def report(self, names: Sequence[str] | None = None) -> str:
+        """Plain-text report, one block per scan (``names`` label the scans)."""
+        labels = list(names) if names is not None else [f"scan {i + 1}" for i in range(self.n_scans)]
+        lines = [f"Interferent screen at alpha = {self.alpha:g} ({self.method})"]
+        for i, label in enumerate(labels):
+            if np.isnan(self.p_value[i]):
+                lines.append(f"{label}: not tested (too few usable points)")
+                continue
+            verdict = "UNEXPLAINED STRUCTURE" if self.flagged[i] else "consistent with noise"
+            lines.append(
+                f"{label}: {verdict} (p = {self.p_value[i]:.3g}, smooth F = {self.statistic[i]:.2f}, "
+                f"noise ratio = {self.noise_ratio[i]:.2f})"
+            )
+            diagnosis = self.diagnoses[i]
+            if diagnosis is not None:
+                lines.append(f"    {diagnosis.message}")
+        return "\n".join(lines)
+
+
+@dataclass(frozen=True, eq=False)
+class SuspectReport:
+    """Result of :func:`explain_with_suspects`.
+
+    Attributes
+    ----------
+    candidate_names : tuple of str
+        The suspects, in column order.
+    amount, amount_se : ndarray, shape (n_scans, n_candidates)
+        Estimated amount of each suspect (candidate units) when added alone, and its
+        standard error.
+    f_statistic : ndarray, shape (n_scans, n_candidates)
+        Whitened extra-sum-of-squares F for adding the suspect.
+    p_value : ndarray, shape (n_scans, n_candidates)
+        Boundary-corrected p-value (the amount is constrained >= 0, so the null
+        distribution is an equal mixture of 0 and F(1, dof)).
+    best : ndarray of int, shape (n_scans,)
+        Index of the suspect that best explains the residual (largest F), or -1
+        when none is significant at ``alpha`` after the Bonferroni correction.
+    best_p : ndarray, shape (n_scans,)
+        Bonferroni-adjusted p-value of the best suspect.
+    remaining : Screening
+        Screen of the residual left after adding the best suspect (or none): a
+        flagged scan still holds something the suspect does not explain.
+    alpha : float
+        Significance level.
+    """
+
+    candidate_names: tuple[str, ...]
+    amount: NDArray[np.float64]
+    amount_se: NDArray[np.float64]
+    f_statistic: NDArray[np.float64]
+    p_value: NDArray[np.float64]
+    best: NDArray[np.int64]
+    best_p: NDArray[np.float64]
+    remaining: Screening
+    alpha: float
+
+    @property
+    def best_names(self) -> tuple[str | None, ...]:
+        """Name of the best significant suspect per scan (None when none is)."""
+        return tuple(None if b < 0 else self.candidate_names[b] for b in self.best)
+
+    @property
+    def explained(self) -> NDArray[np.bool_]:
+        """True where a suspect is significant and nothing unexplained remains after adding it."""
+        return (self.best >= 0) & ~self.remaining.flagged
+
+    def summary(self) -> dict[str, Any]:
+        """JSON-safe summary with one record per scan."""
+        scans = []
+        for i, name in enumerate(self.best_names):
+            scans.append(
+                {
+                    "best": name,
+                    "best_p": _nan_to_none(self.best_p[i]),
+                    "explained": bool(self.explained[i]),
+                    "remaining_p": _nan_to_none(self.remaining.p_value[i]),
+                    "candidates": [
+                        {
+                            "name": cand,
+                            "amount": _nan_to_none(self.amount[i, j]),
+                            "amount_se": _nan_to_none(self.amount_se[i, j]),
+                            "f_statistic": _nan_to_none(self.f_statistic[i, j]),
+                            "p_value": _nan_to_none(self.p_value[i, j]),
+                        }
+                        for j, cand in enumerate(self.candidate_names)
+                    ],
+                }
+            )
+        return {"alpha": float(self.alpha), "candidates": list(self.candidate_names), "scans": scans}
+
+    def report(self, names: Sequence[str] | None = None) -> str:
+        """Plain-text report, one line per scan."""
+        labels = list(names) if names is not None else [f"scan {i + 1}" for i in range(self.best.size)]
+        lines = [f"Suspects tried: {', '.join(self.candidate_names)} (alpha = {self.alpha:g})"]
+        for i, label in enumerate(labels):
+            b = int(self.best[i])
+            if b < 0:
+                lines.append(f"{label}: no suspect explains the residual significantly")
+                continue
+            rest = "and nothing else remains" if self.explained[i] else "but something else remains"
+            lines.append(
+                f"{label}: {self.candidate_names[b]} = {self.amount[i, b]:.4g} ± {self.amount_se[i, b]:.2g} "
+                f"(p = {self.best_p[i]:.3g}), {rest} (p = {self.remaining.p_value[i]:.3g})"
+            )
+        return "\n".join(lines)
+
+
+# --------------------------------------------------------------------------- validation
+
+
+def _check_alpha(alpha: float) -> float:
+    if not (isinstance(alpha, (int, float)) and 0.0 < float(alpha) < 1.0):
+        raise AbsolveError(f"alpha must be a number between 0 and 1, got {alpha!r}", fix="use e.g. alpha=0.05")
+    return float(alpha)
+
+
+def _as_float(name: str, value: ArrayLike, ndim: int | tuple[int, ...]) -> NDArray[np.float64]:
+    array = np.array(value, dtype=np.float64)
+    allowed = (ndim,) if isinstance(ndim, int) else ndim
+    if array.ndim not in allowed:
+        raise AbsolveError(
+            f"{name} must be a {' or '.join(f'{d}-D' for d in allowed)} array, got shape {array.shape}"
+        )
+    return array
+
+
+def _check_grid(wavelengths: ArrayLike) -> NDArray[np.float64]:
+    grid = _as_float("wavelengths", wavelengths, 1)
+    if grid.size < 3 or not np.all(np.isfinite(grid)) or not np.all(np.diff(grid) > 0):
+        raise AbsolveError("wavelengths must be at least three finite values, strictly increasing (nm)")
+    return grid
+
+
+def _check_noise(noise: NoiseModel) -> NoiseModel:
+    if not isinstance(noise, NoiseModel):
+        raise AbsolveError(
+            f"noise must be a NoiseModel, got {type(noise).__name__}",
+            fix="calibrate a library from standards, or give NoiseModel(floor, proportional, correlation_length_nm)",
+        )
+    if noise.floor <= 0:
+        raise AbsolveError(
+            "screening needs a noise model with floor > 0 (zero noise at zero absorbance gives infinite weight)",
+            fix="set the noise floor to the instrument's baseline noise",
+        )
+    return noise
+
+
+def _check_design(design: ArrayLike, n_scans: int, n_wl: int) -> NDArray[np.float64]:
+    x = _as_float("design", design, (2, 3))
+    if x.ndim == 2:
+        x = x[None]
+    if x.shape[1] != n_wl or x.shape[0] not in (1, n_scans) or x.shape[2] < 1:
+        raise AbsolveError(
+            f"design of shape {np.shape(design)} does not fit {n_scans} scans x {n_wl} wavelengths",
+            fix="give the fit's design matrix as (n_wavelengths, n_columns) or (n_scans, n_wavelengths, n_columns)",
+        )
+    if not np.all(np.isfinite(x)):
+        raise AbsolveError("design matrix holds NaN or infinite values", fix="build it from finite absorptivities")
+    return np.broadcast_to(x, (n_scans, n_wl, x.shape[2]))
+
+
+def _usable_points(
+    usable: ArrayLike | None, shape: tuple[int, int], *arrays: NDArray[np.float64]
+) -> NDArray[np.bool_]:
+    """Points to use: the caller's mask, minus any non-finite value (NaN marks an unusable point)."""
+    mask = np.ones(shape, dtype=bool)
+    if usable is not None:
+        given = np.asarray(usable)
+        if given.shape != shape or given.dtype != np.bool_:
+            raise AbsolveError(f"usable must be a boolean array of shape {shape}, got {given.dtype} {given.shape}")
+        mask &= given
+    for array in arrays:
+        mask &= np.isfinite(array)
+    return mask
+
+
+# --------------------------------------------------------------------------- whitening
+
+
+def _ar_links(
+    grid: NDArray[np.float64], usable: NDArray[np.bool_], correlation_length_nm: float
+) -> tuple[NDArray[np.float64], NDArray[np.intp], NDArray[np.bool_]]:
+    """AR(1) coefficient linking each usable point to the previous usable one, that point's index,
+    and whether such a previous point exists."""
+    index = np.arange(grid.size)
+    last = np.maximum.accumulate(np.where(usable, index, -1), axis=1)
+    previous = np.full_like(last, -1)
+    previous[:, 1:] = last[:, :-1]
+    linked = usable & (previous >= 0)
+    previous = np.maximum(previous, 0)
+    if correlation_length_nm <= 0:
+        return np.zeros(usable.shape), previous, linked
+    gap = grid[None, :] - grid[previous]
+    return np.where(linked, np.exp(-gap / correlation_length_nm), 0.0), previous, linked
+
+
+def prewhiten(
+    wavelengths: ArrayLike,
+    values: ArrayLike,
+    level: ArrayLike,
+    noise: NoiseModel,
+    *,
+    usable: ArrayLike | None = None,
+) -> NDArray[np.float64]:
+    """Transform residual-like values so that modelled noise becomes independent unit-variance noise.
+
+    Each point is divided by the noise standard deviation at absorbance
+    ``level`` (heteroscedastic scaling), then the AR(1) correlation along
+    wavelength is removed with the Prais-Winsten transform
+    ``w_j = (z_j - rho_j z_{j-1}) / sqrt(1 - rho_j**2)``, ``rho_j = exp(-gap_j / L)``,
+    linking each usable point to the previous usable one. This is the inverse
+    Cholesky factor of the noise covariance: if ``v = D e`` with ``e`` AR(1),
+    the output is independent N(0, 1). Unusable points come out as 0 so they
+    drop out of every sum of squares.
+
+    Parameters
+    ----------
+    wavelengths : array_like, shape (n_wavelengths,)
+        Increasing grid in nm.
+    values : array_like, shape (n_scans, n_wavelengths) or (n_scans, n_wavelengths, n_columns)
+        Residuals, or design columns to transform the same way.
+    level : array_like, shape (n_scans, n_wavelengths)
+        Absorbance the noise standard deviation is evaluated at (the fitted absorbance).
+    noise : NoiseModel
+        Instrument noise model (floor must be > 0).
+    usable : array_like of bool, shape (n_scans, n_wavelengths), optional
+        Points to use; non-finite ``level`` points are unusable too.
+
+    Returns
+    -------
+    ndarray, same shape as ``values``
+        Whitened values (0 at unusable points).
+
+    Examples
+    --------
+    >>> from absolve.library import NoiseModel
+    >>> w = prewhiten([400, 401, 402], [[0.002, 0.002, 0.002]], [[0.0, 0.0, 0.0]], NoiseModel(0.002, 0.0, 0.0))
+    >>> w.round(6).tolist()
+    [[1.0, 1.0, 1.0]]
+    """
+    grid = _check_grid(wavelengths)
+    noise = _check_noise(noise)
+    data = _as_float("values", values, (2, 3))
+    lev = _as_float("level", level, 2)
+    if lev.shape[1] != grid.size or data.shape[:2] != lev.shape:
+        raise AbsolveError(
+            f"values {data.shape} and level {lev.shape} do not match {grid.size} wavelengths",
+            fix="give one row per scan on the wavelength grid",
+        )
+    mask = _usable_points(usable, lev.shape, lev)
+    rho, previous, _ = _ar_links(grid, mask, noise.correlation_length_nm)
+    return _whiten(data, lev, mask, rho, previous, noise)
+
+
+def _whiten(
+    data: NDArray[np.float64],
+    level: NDArray[np.float64],
+    mask: NDArray[np.bool_],
+    rho: NDArray[np.float64],
+    previous: NDArray[np.intp],
+    noise: NoiseModel,
+) -> NDArray[np.float64]:
+    """Prais-Winsten whitening of (n, n_wl) or (n, n_wl, q) values; 0 at unusable points."""
+    sd = noise.standard_deviation(np.where(mask, level, 0.0))
+    if data.ndim == 3:
+        sd, rho, mask, previous = sd[..., None], rho[..., None], mask[..., None], previous[..., None]
+    z = np.where(mask, data, 0.0) / sd
+    z_previous = np.take_along_axis(z, np.broadcast_to(previous, z.shape), axis=1)
+    return np.where(mask, (z - rho * z_previous) / np.sqrt(1.0 - rho**2), 0.0)
+
+
+def _unwhiten(
+    whitened: NDArray[np.float64], sd: NDArray[np.float64], rho: NDArray[np.float64], mask: NDArray[np.bool_]
+) -> NDArray[np.float64]:
+    """Invert :func:`_whiten` for one scan (NaN at unusable points)."""
+    rows = np.flatnonzero(mask)
+    s, r, w = sd[rows], rho[rows], whitened[rows]
+    root = np.sqrt(1.0 - r**2)
+    # The whitening matrix is lower bidiagonal over the usable points.
+    banded = np.zeros((2, rows.size))
+    banded[0] = 1.0 / (s * root)
+    banded[1, :-1] = -r[1:] / (s[:-1] * root[1:])
+    out = np.full(sd.shape, np.nan)
+    out[rows] = scipy.linalg.solve_banded((1, 0), banded, w)
+    return out
+
+
+# --------------------------------------------------------------------------- subspaces
+
+
+def smooth_basis(wavelengths: ArrayLike, n_terms: int) -> NDArray[np.float64]:
+    """Cosine basis for smooth structure along wavelength, shape (n_wavelengths, n_terms).
+
+    Column k is ``cos(pi * k * x)`` with ``x`` running from 0 to 1 over the grid
+    (the discrete cosine transform's basis evaluated at the actual wavelengths),
+    so ``n_terms`` terms resolve features down to about ``2 * span / n_terms`` nm
+    in period. Cosines have even leverage across the range (high-degree
+    polynomials crowd at the ends).
+    """
+    grid = _check_grid(wavelengths)
+    if not (isinstance(n_terms, (int, np.integer)) and n_terms >= 1):
+        raise AbsolveError(f"the number of smooth terms must be a positive integer, got {n_terms!r}")
+    x = (grid - grid[0]) / (grid[-1] - grid[0])
+    return np.cos(np.pi * np.outer(x, np.arange(int(n_terms))))
+
+
+def _default_terms(grid: NDArray[np.float64], n_columns: int) -> int:
+    """Terms resolving features of about ``_SMOOTH_SCALE_NM``, leaving most points for the rough part."""
+    by_scale = int(round((grid[-1] - grid[0]) / _SMOOTH_SCALE_NM))
+    return int(np.clip(by_scale, 4, 40, dtype=np.int64).clip(max=max(1, (grid.size - n_columns) // 3)))
+
+
+def _orthonormal_columns(matrix: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
+    """Orthonormal basis of each stacked matrix's column space; columns beyond the rank are zeroed."""
+    u, s, _ = np.linalg.svd(matrix, full_matrices=False)
+    keep = s > _RANK_TOL * np.linalg.norm(matrix, axis=(1, 2))[:, None]
+    return u * keep[:, None, :], keep.sum(axis=1)
+
+
+@dataclass(frozen=True)
+class _Subspaces:
+    """Whitened geometry of a block of scans.
+
+    The smooth subspace is held through the eigen-decomposition of its Gram
+    matrix rather than an orthonormal basis: ``coords`` are the residual's
+    coordinates in an orthonormal basis of it, which is all the test needs, and
+    a k x k eigenproblem per scan is far cheaper than an SVD of the n_wl x k basis.
+    """
+
+    mask: NDArray[np.bool_]
+    rho: NDArray[np.float64]
+    previous: NDArray[np.intp]
+    linked: NDArray[np.bool_]
+    sd: NDArray[np.float64]
+    noise: NoiseModel
+    design_basis: NDArray[np.float64]  # (n, n_wl, p) orthonormal, zero columns beyond the rank
+    design_rank: NDArray[np.int64]
+    white_smooth: NDArray[np.float64]  # (n, n_wl, k) whitened cosine basis
+    smooth_vectors: NDArray[np.float64]  # (n, k, k) Gram eigenvectors scaled by 1/sqrt(eigenvalue), 0 if dropped
+    smooth_rank: NDArray[np.int64]
+    residual: NDArray[np.float64]  # (n, n_wl) whitened residual projected off the design
+    coords: NDArray[np.float64]  # (n, k) residual coordinates in the smooth subspace
+
+    def smooth_orthonormal(self, i: int) -> NDArray[np.float64]:
+        """Orthonormal basis (n_wl, k; zero columns beyond the rank) of scan ``i``'s smooth subspace."""
+        projected = self.white_smooth[i] - self.design_basis[i] @ (self.design_basis[i].T @ self.white_smooth[i])
+        return projected @ self.smooth_vectors[i]
+
+
+def _subspaces(
+    grid: NDArray[np.float64],
+    residuals: NDArray[np.float64],
+    fitted: NDArray[np.float64],
+    design: NDArray[np.float64],
+    mask: NDArray[np.bool_],
+    basis: NDArray[np.float64],
+    noise: NoiseModel,
+) -> _Subspaces:
+    rho, previous, linked = _ar_links(grid, mask, noise.correlation_length_nm)
+    sd = noise.standard_deviation(np.where(mask, fitted, 0.0))
+    white_design = _whiten(design, fitted, mask, rho, previous, noise)
+    design_basis, design_rank = _orthonormal_columns(white_design)
+    white_smooth = _whiten(np.broadcast_to(basis, design.shape[:2] + basis.shape[1:]), fitted, mask, rho, previous, noise)
+    # Gram matrix of the smooth basis after projection off the design: S'S - (U'S)'(U'S).
+    overlap = design_basis.transpose(0, 2, 1) @ white_smooth
+    gram = white_smooth.transpose(0, 2, 1) @ white_smooth - overlap.transpose(0, 2, 1) @ overlap
+    values, vectors = np.linalg.eigh(gram)
+    # Squared singular values, hence the squared tolerance.
+    keep = values > _RANK_TOL**2 * np.einsum("nwk,nwk->n", white_smooth, white_smooth)[:, None] * 1e4
+    vectors = vectors * np.where(keep, 1.0 / np.sqrt(np.where(keep, values, 1.0)), 0.0)[:, None, :]
+    white_residual = _whiten(residuals, fitted, mask, rho, previous, noise)
+    along = np.einsum("nwp,nw->np", design_basis, white_residual)
+    off_design = white_residual - np.einsum("nwp,np->nw", design_basis, along)
+    # The residual is orthogonal to the design, so its smooth coordinates need no projection of the basis.
+    coords = np.einsum("nkj,nk->nj", vectors, np.einsum("nwk,nw->nk", white_smooth, off_design))
+    return _Subspaces(
+        mask, rho, previous, linked, sd, noise, design_basis, design_rank, white_smooth, vectors, keep.sum(axis=1),
+        off_design, coords,
+    )
+
+
+# --------------------------------------------------------------------------- screening
+
+
+def screen_residuals(
+    wavelengths: ArrayLike,
+    residuals: ArrayLike,
+    fitted: ArrayLike,
+    design: ArrayLike,
+    noise: NoiseModel,
+    *,
+    usable: ArrayLike | None = None,
+    alpha: float = 0.05,
+    smooth_terms: int | None = None,
+    noise_tolerance: float = 1.5,
+    omnibus_share: float = 0.1,
+    diagnose: bool = True,
+) -> Screening:
+    """Test each scan's fit residual for structure the reference library does not explain.
+
+    The whitened residual (see :func:`prewhiten`) is projected off the whitened
+    design, leaving ``m - rank`` degrees of freedom of pure noise when the
+    library explains the scan (``m`` usable points). That space is split into a
+    smooth subspace (the whitened cosine basis of :func:`smooth_basis`,
+    orthogonalised against the design, ``k`` dimensions) and the rough rest.
+
+    - Smooth F test: ``F = (Q_s / k) / (Q_r / (m - rank - k))`` follows
+      F(k, m - rank - k) under the null whatever the noise model's overall scale,
+      because both energies scale alike. Smooth interferents concentrate their
+      energy in ``k`` dimensions instead of ``m``, hence the power.
+    - Omnibus test: the whole whitened residual energy (the Q statistic of
+      ASTM E1655-style residual checks, here exactly chi-square because whitened,
+      so no Box (1954) or Jackson & Mudholkar (1979) approximation is needed)
+      against ``noise_tolerance**2`` times chi-square(m - rank): it fires only
+      when the residual is much larger than any plausible misestimate of the noise
+      model, catching rough structure (spikes, narrow features) and noisy scans.
+    - Combined p-value ``min(p_F / (1 - w), p_Q / w)`` with ``w = omnibus_share``
+      (weighted Bonferroni): the false-alarm rate is at most ``alpha``, and about
+      ``(1 - w) * alpha`` when the noise model is right.
+
+    The Durbin-Watson statistic (Durbin & Watson 1950) of the projected whitened
+    residual is reported as a whiteness measure alongside, in the spirit of the
+    Ljung-Box portmanteau check.
+
+    Parameters
+    ----------
+    wavelengths : array_like, shape (n_wavelengths,)
+        Increasing grid in nm.
+    residuals : array_like, shape (n_scans, n_wavelengths)
+        ``measured - fitted`` (NaN or ``usable=False`` at points left out of the fit).
+    fitted : array_like, shape (n_scans, n_wavelengths)
+        Fitted absorbance, the level the noise standard deviation is evaluated at.
+    design : array_like, shape (n_wavelengths, p) or (n_scans, n_wavelengths, p)
+        The matrix the fit used (absorptivity x path length, baseline columns).
+        The residual must be ``measured - design @ beta`` for some ``beta``; the
+        fitting method does not matter.
+    noise : NoiseModel
+        Instrument noise (floor > 0). Its overall scale may be off; its
+        correlation length should be right (see docs/screening.md).
+    usable : array_like of bool, shape (n_scans, n_wavelengths), optional
+        Points the fit used.
+    alpha : float, default 0.05
+        False-alarm rate.
+    smooth_terms : int, optional
+        Size of the cosine basis; default one term per 15 nm of range (4 to 40).
+    noise_tolerance : float, default 1.5
+        Noise-scale error the omnibus test forgives.
+    omnibus_share : float, default 0.1
+        Share of ``alpha`` spent on the omnibus test (0 < share < 1).
+    diagnose : bool, default True
+        Whether to match the shapes of flagged scans' residuals.
+
+    Returns
+    -------
+    Screening
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from absolve.library import NoiseModel
+    >>> grid = np.arange(400.0, 701.0)
+    >>> design = np.column_stack([np.exp(-0.5 * ((grid - 520) / 30) ** 2), np.ones_like(grid)])
+    >>> noise = NoiseModel(0.002, 0.0, 0.0)
+    >>> rng = np.random.default_rng(0)
+    >>> residual = 0.002 * rng.standard_normal((1, grid.size))
+    >>> bump = 0.01 * np.exp(-0.5 * ((grid - 600) / 8) ** 2)
+    >>> result = screen_residuals(grid, np.vstack([residual, residual + bump]), np.zeros((2, grid.size)), design, noise)
+    >>> result.flagged.tolist(), result.diagnoses[1].kind
+    ([False, True], 'foreign-band')
+    """
+    alpha = _check_alpha(alpha)
+    if not (isinstance(noise_tolerance, (int, float)) and noise_tolerance >= 1.0):
+        raise AbsolveError(f"noise_tolerance must be a number >= 1, got {noise_tolerance!r}")
+    if not (isinstance(omnibus_share, (int, float)) and 0.0 < omnibus_share < 1.0):
+        raise AbsolveError(f"omnibus_share must be strictly between 0 and 1, got {omnibus_share!r}")
+    grid = _check_grid(wavelengths)
+    noise = _check_noise(noise)
+    resid = _as_float("residuals", residuals, 2)
+    fit = _as_float("fitted", fitted, 2)
+    if resid.shape[1] != grid.size or fit.shape != resid.shape:
+        raise AbsolveError(
+            f"residuals {resid.shape} and fitted {fit.shape} must both be (n_scans, {grid.size})",
+            fix="give one row per scan on the wavelength grid",
+        )
+    n_scans = resid.shape[0]
+    x = _check_design(design, n_scans, grid.size)
+    mask = _usable_points(usable, resid.shape, resid, fit)
+    terms = _default_terms(grid, x.shape[2]) if smooth_terms is None else smooth_terms
+    basis = smooth_basis(grid, terms)
+
+    energy = np.empty(n_scans)
+    smooth_energy = np.empty(n_scans)
+    dw_numerator = np.empty(n_scans)
+    total_dof = np.empty(n_scans, dtype=np.int64)
+    smooth_dof = np.empty(n_scans, dtype=np.int64)
+    for start in range(0, n_scans, _BLOCK):
+        block = slice(start, min(start + _BLOCK, n_scans))
+        # Stacks of small matrices: BLAS threads only add synchronisation (tens of times slower on a busy machine).
+        with threadpool_limits(limits=1, user_api="blas"):
+            sub = _subspaces(grid, resid[block], fit[block], x[block], mask[block], basis, noise)
+        u = sub.residual
+        energy[block] = np.einsum("nw,nw->n", u, u)
+        smooth_energy[block] = np.einsum("nk,nk->n", sub.coords, sub.coords)
+        step = np.where(sub.linked, u - np.take_along_axis(u, sub.previous, axis=1), 0.0)
+        dw_numerator[block] = np.einsum("nw,nw->n", step, step)
+        total_dof[block] = sub.mask.sum(axis=1) - sub.design_rank
+        smooth_dof[block] = sub.smooth_rank
+
+    rough_dof = total_dof - smooth_dof
+    testable = (rough_dof >= _MIN_ROUGH_DOF) & (smooth_dof >= 1)
+    rough_energy = np.maximum(energy - smooth_energy, 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        statistic = np.where(testable, (smooth_energy / smooth_dof) / (rough_energy / rough_dof), np.nan)
+        smooth_p = np.where(testable, scipy.stats.f.sf(statistic, smooth_dof, rough_dof), np.nan)
+        omnibus_p = np.where(testable, scipy.stats.chi2.sf(energy / noise_tolerance**2, total_dof), np.nan)
+        noise_ratio = np.where(testable, np.sqrt(rough_energy / rough_dof), np.nan)
+        durbin_watson = np.where(testable, dw_numerator / energy, np.nan)
+    p_value = np.minimum(1.0, np.minimum(smooth_p / (1.0 - omnibus_share), omnibus_p / omnibus_share))
+    flagged = testable & (p_value < alpha)
+
+    diagnoses: list[Diagnosis | None] = [None] * n_scans
+    if diagnose and flagged.any():
+        fixed = _fixed_families(grid)
+        for i in np.flatnonzero(flagged):
+            one = slice(i, i + 1)
+            with threadpool_limits(limits=1, user_api="blas"):
+                sub = _subspaces(grid, resid[one], fit[one], x[one], mask[one], basis, noise)
+                diagnoses[i] = _diagnose(grid, fit[i], sub, smooth_p[i] < (1.0 - omnibus_share) * alpha, fixed)
+    method = (
+        f"whitened smooth-subspace F test ({terms} cosine terms) + omnibus chi-square at {noise_tolerance:g}x "
+        f"modelled noise, weighted Bonferroni ({1 - omnibus_share:g}/{omnibus_share:g})"
+    )
+    return Screening(
+        statistic=statistic,
+        p_value=p_value,
+        flagged=flagged,
+        alpha=alpha,
+        method=method,
+        diagnoses=tuple(diagnoses),
+        smooth_p=smooth_p,
+        omnibus_p=omnibus_p,
+        noise_ratio=noise_ratio,
+        durbin_watson=durbin_watson,
+        smooth_dof=smooth_dof,
+        rough_dof=rough_dof,
+    )
+
+
+# --------------------------------------------------------------------------- diagnosis
+
+
+@dataclass(frozen=True)
+class _Family:
+    """Candidate shapes of one kind: ``shapes`` (n_shapes, n_wl), their parameters, and the sign rule."""
+
+    kind: str
+    shapes: NDArray[np.float64]
+    parameters: Mapping[str, NDArray]
+    positive: bool
+
+
+def _fixed_families(grid: NDArray[np.float64]) -> list[_Family]:
+    """Shapes that do not depend on the scan: Gaussian bands on a grid of centres and widths, power-law scattering."""
+    span = grid[-1] - grid[0]
+    step = max(float(np.median(np.diff(grid))), span / 150.0)
+    centres = np.arange(grid[0], grid[-1] + 0.5 * step, step)
+    widths = np.array([w for w in _BAND_WIDTHS_NM if w <= span / 3.0] or [span / 6.0])
+    c, w = (a.ravel() for a in np.meshgrid(centres, widths, indexing="ij"))
+    bands = np.exp(-0.5 * ((grid[None, :] - c[:, None]) / w[:, None]) ** 2)
+    exponents = np.array(_SCATTER_EXPONENTS)
+    scatter = (grid[None, :] / grid[0]) ** (-exponents[:, None])
+    return [
+        _Family("foreign-band", bands, {"center_nm": c, "width_nm": w}, True),
+        _Family("scatter", scatter, {"exponent": exponents}, True),
+    ]
+
+
+def _scan_families(grid: NDArray[np.float64], fitted: NDArray[np.float64]) -> list[_Family]:
+    """Shapes built from the scan's fitted absorbance: wavelength shift and high-absorbance shortfall."""
+    level = np.clip(fitted, 0.0, None)
+    # A shift of +d nm (features at longer wavelengths than the library) turns A(x) into A(x - d) ~ A - d A'.
+    shift = -np.gradient(fitted, grid)[None, :]
+    shortfall = np.vstack([-(level**2), -(10.0**level - 1.0) / np.log(10.0)])
+    return [
+        _Family("wavelength-shift", shift, {}, False),
+        _Family("nonlinearity", shortfall, {"shape": np.array(["quadratic", "stray-light"])}, True),
+    ]
+
+
+def _whiten_adjoint(
+    g: NDArray[np.float64], sd: NDArray[np.float64], rho: NDArray[np.float64], previous: NDArray[np.intp],
+    linked: NDArray[np.bool_], mask: NDArray[np.bool_],
+) -> NDArray[np.float64]:
+    """``W.T @ g`` for one scan's whitening matrix W, g of shape (n_wl, k).
+
+    Whitening many templates ``t`` and taking coordinates ``G.T @ W @ t`` is the
+    same as ``(W.T @ G).T @ t``: one pass over the k basis vectors instead of one
+    per template.
+    """
+    root = np.sqrt(1.0 - rho**2)
+    out = np.where(mask[:, None], g / (sd * root)[:, None], 0.0)
+    j = np.flatnonzero(linked)
+    # Each point is the previous usable point of at most one other, so the indices do not repeat.
+    out[previous[j]] -= (rho[j] / (root[j] * sd[previous[j]]))[:, None] * g[j]
+    return out
+
+
+def _half_window(grid: NDArray[np.float64], profile: NDArray[np.float64]) -> tuple[float, float, float, float]:
+    """Peak position, signed peak value and the contiguous half-maximum window around it."""
+    size = np.abs(np.nan_to_num(profile))
+    peak = int(np.argmax(size))
+    below = np.flatnonzero(size < 0.5 * size[peak])
+    lo = below[below < peak].max() + 1 if np.any(below < peak) else 0
+    hi = below[below > peak].min() - 1 if np.any(below > peak) else grid.size - 1
+    return float(grid[peak]), float(profile[peak]), float(grid[lo]), float(grid[hi])
+
+
+def _confidence(share: float, runner_share: float, z: float) -> Confidence:
+    """How sure the shape match is: by the best share, its lead over the runner-up and its signal-to-noise."""
+    lead = share - runner_share
+    if share >= 0.8 and lead >= 0.15 and z >= 5.0:
+        return "high"
+    if share >= 0.6 and lead >= 0.05 and z >= 3.0:
+        return "moderate"
+    return "low"
+
+
+@dataclass(frozen=True)
+class _Match:
+    kind: str
+    explained: float  # whitened energy the best shape of the family explains
+    null_explained: float  # what the best shape would explain of pure noise, on average
+    amplitude: float
+    amplitude_se: float
+    shape: NDArray[np.float64]
+    detail: dict[str, float | str]
+
+
+def _match(family: _Family, adjoint: NDArray[np.float64], coords: NDArray[np.float64], noise_var: float,
+           null_draws: NDArray[np.float64]) -> _Match:
+    """Best shape of a family in the smooth unexplained subspace (least squares, one amplitude)."""
+    tau = family.shapes @ adjoint  # (n_shapes, k): coordinates of the whitened shapes
+    norm2 = np.einsum("sk,sk->s", tau, tau)
+    valid = norm2 > _RANK_TOL * max(float(norm2.max()), np.finfo(float).tiny)
+    scale = np.where(valid, 1.0 / np.sqrt(np.where(valid, norm2, 1.0)), 0.0)
+    z = (tau @ coords) * scale  # signed amplitude z-score of each shape (in units of the noise sd)
+    z_null = (tau @ null_draws.T) * scale[:, None]
+    if family.positive:
+        z, z_null = np.maximum(z, 0.0), np.maximum(z_null, 0.0)
+    best = int(np.argmax(z**2))
+    amplitude = float(z[best] * scale[best]) if valid[best] else 0.0
+    detail = {name: (str(v[best]) if v.dtype.kind in "US" else float(v[best])) for name, v in family.parameters.items()}
+    se = float(np.sqrt(noise_var) * scale[best])
+    if family.kind == "wavelength-shift":
+        detail.update(shift_nm=amplitude, shift_se_nm=se)
+    return _Match(
+        family.kind, float(z[best] ** 2), float(np.mean(np.max(z_null**2, axis=0))), amplitude, se,
+        family.shapes[best], detail,
+    )
+
+
+def _diagnose(
+    grid: NDArray[np.float64], fitted: NDArray[np.float64], sub: _Subspaces, smooth_found: bool,
+    fixed: list[_Family],
+) -> Diagnosis:
+    """Match the smooth unexplained residual of one scan against the shape families."""
+    mask = sub.mask[0]
+    basis = sub.smooth_orthonormal(0)
+    coords = sub.coords[0]
+    u = sub.residual[0]
+    smooth_energy = float(coords @ coords)
+    rough_dof = int(mask.sum() - sub.design_rank[0] - sub.smooth_rank[0])
+    # Residual noise variance in whitened units, measured on the rough part so a noise-model scale error cancels.
+    noise_var = max(float(u @ u) - smooth_energy, 0.0) / max(rough_dof, 1)
+    smooth_residual = _unwhiten(basis @ coords, sub.sd[0], sub.rho[0], mask)
+    filled = np.interp(grid, grid[mask], fitted[mask])
+    adjoint = _whiten_adjoint(basis, sub.sd[0], sub.rho[0], sub.previous[0], sub.linked[0], mask)
+    # Fixed pseudo-random draws keep the result reproducible; they only set the look-elsewhere penalty.
+    null_draws = np.random.default_rng(0).standard_normal((200, basis.shape[1])) * np.sqrt(noise_var)
+    matches = [_match(f, adjoint, coords, noise_var, null_draws) for f in fixed + _scan_families(grid, filled)]
+    # Penalise each family by what its best shape explains of pure noise, so flexible families do not win on noise.
+    ranked = sorted(matches, key=lambda m: m.explained - m.null_explained, reverse=True)
+    best, runner = ranked[0], ranked[1]
+    share = best.explained / smooth_energy if smooth_energy > 0 else 0.0
+    runner_share = runner.explained / smooth_energy if smooth_energy > 0 else 0.0
+    z = best.amplitude / best.amplitude_se if best.amplitude_se > 0 else 0.0
+    _, residual_peak, _, _ = _half_window(grid, smooth_residual)
+
+    if not smooth_found or share < 0.5:
+        peak_nm, value, lo, hi = _half_window(grid, smooth_residual)
+        what = (
+            "The residual is larger than the noise model allows but has no smooth shape: "
+            "a spike, a narrow feature, or a noisier scan than the instrument's usual"
+            if not smooth_found
+            else f"The library leaves smooth structure unexplained, largest {value:+.2g} absorbance near "
+            f"{peak_nm:.0f} nm ({lo:.0f}-{hi:.0f} nm), but it matches none of the usual shapes well "
+            f"(best: {_FAMILY_WORDS[best.kind]}, {share:.0%} of it)"
+        )
+        return Diagnosis(
+            kind="unclassified", window_nm=(lo, hi), peak_nm=peak_nm, size_absorbance=value,
+            residual_absorbance=residual_peak, confidence="low", share=share, runner_up=best.kind,
+            runner_up_share=share, amplitude_z=abs(z), detail={}, message=what + ".",
+        )
+
+    peak_nm, value, lo, hi = _half_window(grid, np.where(mask, best.amplitude * best.shape, np.nan))
+    confidence = _confidence(share, runner_share, abs(z))
+    sureness = {"high": "high confidence", "moderate": "moderate confidence", "low": "low confidence, a best guess"}
+    d = best.detail
+    lead_in = {
+        "foreign-band": f"An absorber the library does not hold seems present: a band near {d.get('center_nm', peak_nm):.0f} nm "
+        f"({lo:.0f}-{hi:.0f} nm) adding up to {value:.2g} absorbance",
+        "scatter": f"A smooth rise toward short wavelengths, as turbidity or scattering gives (about lambda^-"
+        f"{d.get('exponent', 4.0):g}), adds about {value:.2g} absorbance at {peak_nm:.0f} nm",
+        "wavelength-shift": f"The scan looks shifted by {d.get('shift_nm', 0.0):+.2f} ± {d.get('shift_se_nm', 0.0):.2f} nm "
+        f"against the library's wavelength scale (largest effect {value:+.2g} absorbance near {peak_nm:.0f} nm)",
+        "nonlinearity": f"The scan falls short of the library where absorbance is highest (up to {abs(value):.2g} "
+        f"absorbance near {peak_nm:.0f} nm), as stray light or concentrations beyond the linear range do",
+    }[best.kind]
+    message = (
+        f"{lead_in}; this shape explains {share:.0%} of the unexplained smooth residual "
+        f"(next: {_FAMILY_WORDS[runner.kind]}, {runner_share:.0%}) — {sureness[confidence]}."
+    )
+    return Diagnosis(
+        kind=best.kind,  # type: ignore[arg-type]
+        window_nm=(lo, hi), peak_nm=peak_nm, size_absorbance=value, residual_absorbance=residual_peak,
+        confidence=confidence, share=share, runner_up=runner.kind, runner_up_share=runner_share,
+        amplitude_z=abs(z), detail=best.detail, message=message,
+    )
+
+
+# --------------------------------------------------------------------------- suspects
+
+
+def explain_with_suspects(
+    wavelengths: ArrayLike,
+    measured: ArrayLike,
+    design: ArrayLike,
+    nonnegative: ArrayLike,
+    candidates: ArrayLike,
+    candidate_names: Sequence[str],
+    noise: NoiseModel,
+    *,
+    usable: ArrayLike | None = None,
+    alpha: float = 0.05,
+    smooth_terms: int | None = None,
+) -> SuspectReport:
+    """Refit each scan with each suspect absorber added, and test whether it explains the residual.
+
+    The fit is done in whitened space (see :func:`prewhiten`, noise level from a
+    first unweighted fit), so the residual sums of squares are comparable and
+    the extra-sum-of-squares statistic
+    ``F = (RSS_0 - RSS_1) / (RSS_1 / (m - rank))`` is a proper nested-model test
+    under the correlated, heteroscedastic noise, free of the noise model's
+    overall scale. The suspect's amount is constrained to be >= 0, so under the
+    null it sits on the boundary half of the time and the null distribution is
+    the equal mixture of 0 and F(1, m - rank) (Self & Liang 1987): the p-value is
+    ``0.5 * F.sf`` when the amount is positive and 1 when it is zero.
+
+    Parameters
+    ----------
+    wavelengths : array_like, shape (n_wavelengths,)
+        Increasing grid in nm.
+    measured : array_like, shape (n_scans, n_wavelengths)
+        Measured absorbance (NaN at unusable points).
+    design : array_like, shape (n_wavelengths, p) or (n_scans, n_wavelengths, p)
+        The library design (absorptivity x path length, baseline columns).
+    nonnegative : array_like of bool, shape (p,)
+        Which design columns are constrained to be >= 0 (components), the rest
+        free (baseline terms).
+    candidates : array_like, shape (n_candidates, n_wavelengths)
+        Suspect spectra, absorbance per unit amount on this grid (e.g. absorptivity
+        x path length, so amounts come out as concentrations).
+    candidate_names : sequence of str, length n_candidates
+        Their names.
+    noise : NoiseModel
+        Instrument noise (floor > 0).
+    usable : array_like of bool, shape (n_scans, n_wavelengths), optional
+        Points to fit.
+    alpha : float, default 0.05
+        Significance level for naming the best suspect (Bonferroni over suspects)
+        and for the screen of what remains.
+    smooth_terms : int, optional
+        Passed to :func:`screen_residuals` for the remaining-structure screen.
+
+    Returns
+    -------
+    SuspectReport
+    """
+    alpha = _check_alpha(alpha)
+    grid = _check_grid(wavelengths)
+    noise = _check_noise(noise)
+    y = _as_float("measured", measured, 2)
+    if y.shape[1] != grid.size:
+        raise AbsolveError(f"measured has {y.shape[1]} wavelengths, the grid {grid.size}")
+    n_scans = y.shape[0]
+    x = _check_design(design, n_scans, grid.size)
+    p = x.shape[2]
+    constrained = np.asarray(nonnegative)
+    if constrained.shape != (p,) or constrained.dtype != np.bool_:
+        raise AbsolveError(f"nonnegative must be a boolean array with one entry per design column ({p})")
+    suspects = _as_float("candidates", candidates, (1, 2))
+    suspects = suspects.reshape(1, -1) if suspects.ndim == 1 else suspects
+    names = tuple(str(n) for n in candidate_names)
+    if suspects.shape[1] != grid.size or len(names) != suspects.shape[0] or len(set(names)) != len(names):
+        raise AbsolveError(
+            f"candidates {suspects.shape} need {grid.size} wavelengths and one unique name each (got {len(names)})"
+        )
+    if not np.all(np.isfinite(suspects)):
+        raise AbsolveError("candidate spectra hold NaN or infinite values", fix="restrict them to their valid range")
+    mask = _usable_points(usable, y.shape, y)
+    n_cand = suspects.shape[0]
+    lower = np.where(constrained, 0.0, -np.inf)
+
+    # A first unweighted fit only sets the absorbance level the noise sd is evaluated at.
+    level = np.empty_like(y)
+    for i in range(n_scans):
+        rows = mask[i]
+        first = scipy.optimize.lsq_linear(x[i, rows], y[i, rows], bounds=(lower, np.inf), method="bvls")
+        level[i] = x[i] @ first.x
+    rho, previous, _ = _ar_links(grid, mask, noise.correlation_length_nm)
+    wy = _whiten(y, level, mask, rho, previous, noise)
+    wx = _whiten(x, level, mask, rho, previous, noise)
+    wc = _whiten(np.broadcast_to(suspects.T, (n_scans,) + suspects.T.shape), level, mask, rho, previous, noise)
+
+    amount = np.full((n_scans, n_cand), np.nan)
+    amount_se = np.full((n_scans, n_cand), np.nan)
+    f_stat = np.full((n_scans, n_cand), np.nan)
+    p_value = np.full((n_scans, n_cand), np.nan)
+    coefficients = np.zeros((n_scans, n_cand, p + 1))
+    base_coefficients = np.zeros((n_scans, p))
+    extended_lower = np.append(lower, 0.0)
+    for i in range(n_scans):
+        rows = mask[i]
+        a, b = wx[i, rows], wy[i, rows]
+        base = scipy.optimize.lsq_linear(a, b, bounds=(lower, np.inf), method="bvls")
+        base_coefficients[i] = base.x
+        rss0 = float(np.sum((a @ base.x - b) ** 2))
+        for j in range(n_cand):
+            aj = np.column_stack([a, wc[i, rows, j]])
+            fit = scipy.optimize.lsq_linear(aj, b, bounds=(extended_lower, np.inf), method="bvls")
+            dof = int(rows.sum() - np.linalg.matrix_rank(aj))
+            if dof < 1:
+                continue
+            rss1 = float(np.sum((aj @ fit.x - b) ** 2))
+            sigma2 = rss1 / dof
+            free = fit.active_mask == 0
+            free[-1] = True
+            covariance = sigma2 * np.linalg.pinv(aj[:, free].T @ aj[:, free])
+            coefficients[i, j] = fit.x
+            amount[i, j] = fit.x[-1]
+            amount_se[i, j] = float(np.sqrt(covariance[-1, -1]))
+            f_stat[i, j] = max(rss0 - rss1, 0.0) / sigma2
+            p_value[i, j] = 0.5 * scipy.stats.f.sf(f_stat[i, j], 1, dof) if fit.x[-1] > 0 else 1.0
+
+    with np.errstate(invalid="ignore"):
+        top = np.argmax(np.nan_to_num(f_stat, nan=-1.0), axis=1)
+    best_p = np.minimum(1.0, n_cand * p_value[np.arange(n_scans), top])
+    best = np.where(best_p < alpha, top, -1)
+    # What remains: refit with the best suspect (when one is significant) and screen the residual.
+    column = np.where((best >= 0)[:, None], suspects[np.maximum(best, 0)], 0.0)
+    extended = np.concatenate([x, column[:, :, None]], axis=2)
+    chosen = np.where((best >= 0)[:, None], coefficients[np.arange(n_scans), np.maximum(best, 0)], 0.0)
+    chosen[:, :p] = np.where((best >= 0)[:, None], chosen[:, :p], base_coefficients)
+    fitted = np.einsum("nwp,np->nw", extended, chosen)
+    remaining = screen_residuals(
+        grid, y - fitted, fitted, extended, noise, usable=mask, alpha=alpha, smooth_terms=smooth_terms
+    )
+    return SuspectReport(
+        candidate_names=names,
+        amount=amount,
+        amount_se=amount_se,
+        f_statistic=f_stat,
+        p_value=p_value,
+        best=best.astype(np.int64),
+        best_p=best_p,
+        remaining=remaining,
+        alpha=alpha,
+    )
+
+
+# --------------------------------------------------------------------------- Q limit
+
+
+def _imhof_tail(x: float, lam: NDArray[np.float64]) -> float:
+    """P(sum lam_i z_i**2 > x) by Imhof's (1961) numerical inversion of the characteristic function.
+
+    ``P = 1/2 + (1/pi) int_0^inf sin(a(u) - x u / 2) / (u r(u)) du`` with
+    ``a(u) = sum arctan(lam u) / 2`` and ``r(u) = prod (1 + lam**2 u**2)**(1/4)``.
+    The tail of the integral decays slowly for few eigenvalues, so past the first
+    oscillations it is split into cosine and sine Fourier integrals, which QUADPACK
+    integrates to infinity directly.
+    """
+
+    def log_scale(u: float) -> float:
+        # log(u r(u)), in logs so that many eigenvalues cannot overflow the product
+        return float(np.log(u) + 0.25 * np.sum(np.log1p((lam * u) ** 2)))
+
+    def phase(u: float) -> float:
+        return float(0.5 * np.sum(np.arctan(lam * u)))
+
+    omega = 0.5 * x
+    cut = 2.0 * np.pi / omega
+    head, _ = scipy.integrate.quad(lambda u: np.sin(phase(u) - omega * u) * np.exp(-log_scale(u)), 0.0, cut, limit=200)
+    # sin(a - w u) = sin(a) cos(w u) - cos(a) sin(w u)
+    cos_part, _ = scipy.integrate.quad(
+        lambda u: np.sin(phase(u)) * np.exp(-log_scale(u)), cut, np.inf, weight="cos", wvar=omega
+    )
+    sin_part, _ = scipy.integrate.quad(
+        lambda u: np.cos(phase(u)) * np.exp(-log_scale(u)), cut, np.inf, weight="sin", wvar=omega
+    )
+    return 0.5 + (head + cos_part - sin_part) / np.pi
+
+
+def _imhof_quantile(lam: NDArray[np.float64], alpha: float, guess: float) -> float:
+    """Root of ``P(Q > q) = alpha``, bracketed around Box's approximation ``guess``."""
+    low, high = guess / 20.0, guess * 10.0
+    while _imhof_tail(low, lam) < alpha:
+        low /= 10.0
+    while _imhof_tail(high, lam) > alpha:
+        high *= 10.0
+    return float(scipy.optimize.brentq(lambda q: _imhof_tail(q, lam) - alpha, low, high, xtol=1e-10 * guess))
+
+
+def q_limit(
+    eigenvalues: ArrayLike,
+    alpha: float = 0.05,
+    *,
+    method: Literal["jackson-mudholkar", "box", "imhof"] = "jackson-mudholkar",
+) -> float | NDArray[np.float64]:
+    """Upper ``alpha`` limit of a Q (sum of squared residuals) statistic.
+
+    Q is distributed as ``sum_i lambda_i z_i**2`` with independent standard normal
+    ``z_i``, where ``lambda_i`` are the eigenvalues of the residual covariance (in
+    PCA/PLS: the eigenvalues of the components left out of the model).
+
+    - ``"jackson-mudholkar"`` (Jackson & Mudholkar 1979): ``(Q / theta_1) ** h0``
+      is nearly normal with mean ``1 + theta_2 h0 (h0 - 1) / theta_1**2`` and
+      standard deviation ``|h0| sqrt(2 theta_2) / theta_1``, where
+      ``theta_k = sum lambda_i**k`` and ``h0 = 1 - 2 theta_1 theta_3 / (3 theta_2**2)``.
+      Written with the signed ``h0`` the formula is defined for ``h0 <= 0`` too
+      (``h0 -> 0`` takes the log-normal limit), but there, for spectra dominated by
+      one eigenvalue, it overstates the limit (measured: +9 % at alpha 0.05, +43 %
+      at 0.01 for one eigenvalue 1 and a hundred of 0.01); prefer ``"imhof"``.
+    - ``"box"`` (Box 1954): Q is approximately ``g * chi2(h)`` with
+      ``g = theta_2 / theta_1`` and ``h = theta_1**2 / theta_2`` (two moments matched;
+      exact when all eigenvalues are equal, a few percent low in the far tail otherwise).
+    - ``"imhof"`` (Imhof 1961, Biometrika 48, 419-426): exact tail probability by
+      numerical integration, inverted by root finding; slower (one quadrature per
+      iteration) but accurate to the integration tolerance.
+
+    Parameters
+    ----------
+    eigenvalues : array_like, shape (n,) or (n_sets, n)
+        Non-negative eigenvalues (last axis); at least one positive per set.
+    alpha : float, default 0.05
+        Upper tail probability.
+    method : {"jackson-mudholkar", "box", "imhof"}
+
+    Returns
+    -------
+    float or ndarray, shape (n_sets,)
+
+    Examples
+    --------
+    >>> round(q_limit([1.0] * 10, 0.05, method="box"), 3)  # chi-square(10) 95 % point
+    18.307
+    """
+    alpha = _check_alpha(alpha)
+    if method not in ("jackson-mudholkar", "box", "imhof"):
+        raise AbsolveError(f"unknown Q-limit method {method!r}", fix="use 'jackson-mudholkar', 'box' or 'imhof'")
+    lam = np.asarray(eigenvalues, dtype=np.float64)
+    if lam.ndim not in (1, 2) or lam.shape[-1] < 1:
+        raise AbsolveError(f"eigenvalues must be a 1-D or 2-D array, got shape {lam.shape}")
+    if not np.all(np.isfinite(lam)) or np.any(lam < 0) or np.any(lam.max(axis=-1) <= 0):
+        raise AbsolveError("eigenvalues must be finite and >= 0, with at least one > 0 per set")
+    theta1, theta2, theta3 = (np.sum(lam**k, axis=-1) for k in (1, 2, 3))
+    box = theta2 / theta1 * scipy.stats.chi2.isf(alpha, theta1**2 / theta2)
+    if method == "box":
+        limit = box
+    elif method == "imhof":
+        sets = lam.reshape(-1, lam.shape[-1])
+        limit = np.array([_imhof_quantile(row[row > 0], alpha, guess) for row, guess in zip(sets, np.atleast_1d(box), strict=True)])
+        limit = limit.reshape(theta1.shape)
+    else:
+        z = scipy.stats.norm.isf(alpha)
+        h0 = 1.0 - 2.0 * theta1 * theta3 / (3.0 * theta2**2)
+        spread = z * np.sqrt(2.0 * theta2) / theta1
+        near_zero = np.abs(h0) < 1e-8
+        safe_h0 = np.where(near_zero, 1.0, h0)
+        base = 1.0 + theta2 * safe_h0 * (safe_h0 - 1.0) / theta1**2 + spread * safe_h0
+        with np.errstate(invalid="ignore"):
+            power = theta1 * base ** (1.0 / safe_h0)
+        limit = np.where(near_zero, theta1 * np.exp(spread - theta2 / theta1**2), power)
+    return float(limit) if lam.ndim == 1 else np.asarray(limit)
