@@ -37,6 +37,8 @@ def calibrate(
 ) -> None:
     """Build a reference library from standards, or from known absorptivities."""
     unit = check_unit(unit, parameter="--unit")
+    if not 0 < tolerance < 0.5:
+        raise AbsolveError(f"--linearity-tolerance {tolerance:g} must lie between 0 and 0.5", fix="e.g. 0.01 for a 1 % departure")
     check_writable([out], force=force)
     masses = _parse_masses(molar_mass or [])
     low, high = parse_range(wavelength_range)
