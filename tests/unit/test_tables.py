@@ -201,6 +201,16 @@ def test_format_then_read_round_trips(write_file, scans: Spectra) -> None:
     np.testing.assert_allclose(back.values, scans.values, rtol=0, atol=5.000001e-7)
 
 
+def test_format_scan_table_layout() -> None:
+    scans = Spectra([400.0, 400.5, 1000.125], [[-1e-9, 0.1234567, np.nan], [-0.0, 2.0, -0.25]], ["a, quoted", "b"])
+    assert format_scan_table(scans).splitlines() == [
+        'wavelength_nm,"a, quoted",b',
+        "400,0.000000,0.000000",
+        "400.5,0.123457,2.000000",  # fixed 6 decimals
+        "1000.125,,-0.250000",  # an unusable point is an empty cell
+    ]
+
+
 _VALID = (
     "# exported scans\n"
     "wavelength_nm,std-1,std-2\n"

@@ -343,7 +343,8 @@ def read_scans(
 
 
 def _format_float(value: float) -> str:
-    return "" if not np.isfinite(value) else f"{value + 0.0:.6f}"
+    # Rounding first, then adding 0.0, turns every value that rounds to zero into "0.000000", never "-0.000000".
+    return "" if not np.isfinite(value) else f"{round(float(value), 6) + 0.0:.6f}"
 
 
 def format_scan_table(spectra: Spectra, *, first_header: str = "wavelength_nm") -> str:
