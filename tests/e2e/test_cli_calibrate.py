@@ -188,6 +188,10 @@ def test_version_and_help(capsys: pytest.CaptureFixture[str]) -> None:
     assert main(["calibrate", "--help"]) == 0
     text = capsys.readouterr().out
     assert "--standards" in text and "--absorptivities" in text and "--force" in text
+    assert main([]) == 0  # a bare 'absolve' shows the help
+    assert "calibrate" in capsys.readouterr().out
+    assert main(["calibration"]) == 2
+    assert capsys.readouterr().err.strip() == "error: No such command 'calibration'. — run 'absolve --help'"
 
 
 def test_installed_console_script_calibrates(demo, tmp_path: Path) -> None:
