@@ -68,6 +68,9 @@ class Calibration:
         Estimate the instrument's stray-light fraction from the standards'
         curvature and correct for it (see :mod:`absolve.photometry`); the
         library records it so that samples get the same correction.
+    weighted : bool
+        Refit with each point weighted by its inverse noise variance from the
+        learned noise model (ordinary least squares when False).
 
     Attributes
     ----------
@@ -84,6 +87,7 @@ class Calibration:
     ceiling: float = 3.0
     detect_working_range: bool = True
     correct_stray_light: bool = True
+    weighted: bool = True
     library_: ReferenceLibrary = field(init=False, repr=False)
     linear_limit_: float | None = field(init=False, default=None)
     stray_light_: float = field(init=False, default=0.0)
@@ -145,6 +149,12 @@ class Calibration:
             fit = _fit_per_wavelength(design, absorbance, trusted if limit is None else trusted & (absorbance <= limit))
         used = trusted if limit is None else trusted & (absorbance <= limit)
         noise = _noise_model(fit, scans.wavelengths)
+        if noise is not None and self.weighted:
+            # Noise grows with absorbance: weight each point by its inverse noise
+            # variance so that standard errors are honest at every level, then
+            # learn the noise model again from the weighted fit.
+            fit = _fit_per_wavelength(design, absorbance, used, 1.0 / noise.standard_deviation(fit.predicted) ** 2)
+            noise = _noise_model(fit, scans.wavelengths) or noise
         self.linear_limit_ = limit
         self.stray_light_ = stray
         highest = float(np.max(np.where(used, absorbance, -np.inf)))
@@ -223,41 +233,48 @@ def _check_design(design: NDArray[np.float64], conc: NDArray[np.float64], names:
         )
 
 
-def _fit_per_wavelength(design: NDArray[np.float64], absorbance: NDArray[np.float64], mask: NDArray[np.bool_]) -> _Fit:
-    """Least squares at every wavelength, grouping wavelengths that share the same usable standards."""
+def _fit_per_wavelength(
+    design: NDArray[np.float64], absorbance: NDArray[np.float64], mask: NDArray[np.bool_], weights: NDArray[np.float64] | None = None
+) -> _Fit:
+    """Weighted least squares at every wavelength at once.
+
+    ``mask`` says which standards count at each wavelength; ``weights``
+    (inverse noise variances, relative) default to 1. Standard errors use the
+    residual scatter, s^2 (X^T W X)^-1 with s^2 = sum(w r^2) / (n - p).
+    """
     n_std, n_wl = absorbance.shape
     p = design.shape[1]
-    coefficients = np.full((p, n_wl), np.nan)
-    std_error = np.full((p, n_wl), np.nan)
-    dof = np.zeros(n_wl, dtype=np.int64)
-    residuals = np.full((n_std, n_wl), np.nan)
-    leverage = np.full((n_std, n_wl), np.nan)
-    patterns, groups = np.unique(mask.T, axis=0, return_inverse=True)
-    for index, rows in enumerate(patterns):
-        columns = np.flatnonzero(groups.reshape(-1) == index)
-        sub = design[rows]
-        if rows.sum() <= p or np.linalg.matrix_rank(sub) < p:
-            rows = np.isfinite(absorbance[:, columns]).all(axis=1)  # too few trusted points: use every finite one
-            sub = design[rows]
-            if rows.sum() <= p or np.linalg.matrix_rank(sub) < p:
-                raise AbsolveError(
-                    "too few usable standards at some wavelengths to separate the components",
-                    fix="add lower-concentration standards, or restrict the wavelength range",
-                )
-        y = absorbance[np.ix_(rows, columns)]
-        inverse_gram = np.linalg.inv(sub.T @ sub)
-        beta = inverse_gram @ sub.T @ y
-        resid = y - sub @ beta
-        n_dof = int(rows.sum()) - p
-        variance = np.sum(resid**2, axis=0) / n_dof
-        coefficients[:, columns] = beta
-        std_error[:, columns] = np.sqrt(np.outer(np.diag(inverse_gram), variance))
-        dof[columns] = n_dof
-        residuals[np.ix_(rows, columns)] = resid
-        hat = np.einsum("ij,jk,ik->i", sub, inverse_gram, sub)
-        leverage[np.ix_(rows, columns)] = hat[:, None]
+    w = mask.astype(np.float64) if weights is None else np.where(mask, weights, 0.0)
+    counts = mask.sum(axis=0)
+    gram = np.einsum("ij,ik,il->ljk", design, design, w)  # (n_wl, p, p)
+    rank_ok = counts > p
+    if np.any(rank_ok):
+        rank_ok[rank_ok] = np.linalg.matrix_rank(gram[rank_ok]) == p
+    if not np.all(rank_ok):
+        # Too few trusted points at some wavelengths: use every finite one there.
+        fallback = ~rank_ok
+        finite = np.isfinite(absorbance[:, fallback])
+        w[:, fallback] = finite if weights is None else np.where(finite, weights[:, fallback], 0.0)
+        counts[fallback] = finite.sum(axis=0)
+        gram[fallback] = np.einsum("ij,ik,il->ljk", design, design, w[:, fallback])
+        if np.any(counts <= p) or np.any(np.linalg.matrix_rank(gram) < p):
+            raise AbsolveError(
+                "too few usable standards at some wavelengths to separate the components",
+                fix="add lower-concentration standards, or restrict the wavelength range",
+            )
+    y = np.where(w > 0, absorbance, 0.0)
+    rhs = np.einsum("ij,il,il->lj", design, w, y)  # (n_wl, p)
+    inverse_gram = np.linalg.inv(gram)
+    coefficients = np.einsum("ljk,lk->jl", inverse_gram, rhs)  # (p, n_wl)
     predicted = design @ coefficients
-    return _Fit(coefficients, std_error, dof, residuals, leverage, predicted)
+    residuals = np.where(w > 0, absorbance - predicted, np.nan)
+    dof = (w > 0).sum(axis=0) - p
+    variance = np.nansum(w * np.nan_to_num(residuals) ** 2, axis=0) / dof
+    diagonal = np.diagonal(inverse_gram, axis1=1, axis2=2).T  # (p, n_wl)
+    std_error = np.sqrt(diagonal * variance)
+    hat = np.einsum("ij,ljk,ik->il", design, inverse_gram, design) * w
+    leverage = np.where(w > 0, hat, np.nan)
+    return _Fit(coefficients, std_error, dof.astype(np.int64), residuals, leverage, predicted)
 
 
 def _estimate_stray_light(design: NDArray[np.float64], absorbance: NDArray[np.float64], trusted: NDArray[np.bool_]) -> float:
