@@ -294,15 +294,28 @@ def _estimate_stray_light(design: NDArray[np.float64], absorbance: NDArray[np.fl
         return 0.0
     measured = absorbance[:, columns]
 
-    def misfit(fraction: float) -> float:
+    def residuals(fraction: float) -> NDArray[np.float64]:
         y = correct_stray_light(measured, fraction)
         beta, *_ = np.linalg.lstsq(design, y, rcond=None)
-        return float(np.sum((y - design @ beta) ** 2))
+        return y - design @ beta
+
+    def misfit(fraction: float) -> float:
+        return float(np.sum(residuals(fraction) ** 2))
 
     found = optimize.minimize_scalar(misfit, bounds=(0.0, largest), method="bounded", options={"xatol": 1e-6})
     fraction = float(found.x)
-    # A fraction that does not beat no correction at all is noise, not stray light.
-    return fraction if found.fun < misfit(0.0) else 0.0
+    # Keep the fraction only when it improves the fit significantly: an F test
+    # of the one extra parameter, with the degrees of freedom shrunk by the
+    # residuals' correlation along wavelength (neighbouring points are not
+    # independent evidence).
+    base = residuals(0.0)
+    rho = float(np.sum(base[:, 1:] * base[:, :-1]) / max(np.sum(base**2), 1e-300))
+    shrink = float(np.clip((1.0 - rho) / (1.0 + rho), 0.01, 1.0))
+    dof = (base.size - design.shape[1] * base.shape[1]) * shrink
+    if dof < 2 or not found.fun < misfit(0.0):
+        return 0.0
+    f_value = (misfit(0.0) - found.fun) / (found.fun / dof)
+    return fraction if stats.f.sf(f_value, 1, dof) < 0.001 else 0.0
 
 
 def _departure(
