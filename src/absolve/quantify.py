@@ -45,7 +45,7 @@ from .errors import AbsolveError
 from .library import ReferenceLibrary
 from .photometry import correct_stray_light
 from .noise import ar1_coefficients, correlated_norm_squared, effective_points, whiten
-from .solver import solve_nonnegative
+from .solver import MAX_CONDITION, solve_nonnegative
 from .spectra import Spectra
 
 __all__ = ["Baseline", "BASELINES", "MixtureResult", "quantify", "DEFAULT_CEILING"]
@@ -197,7 +197,7 @@ FLAG_TEXT: dict[str, str] = {
     "below-detection": "held at zero by the non-negativity bound or below the limit of detection; the upper limit is reported",
     "below-quantification": "detected but below the limit of quantification: treat the value as semi-quantitative",
     "beyond-calibration": "the concentration in the cell lies above the highest standard; the calibration does not vouch for it",
-    "ill-conditioned": "the components' spectra overlap so much on the used points that small errors are strongly amplified",
+    "ill-conditioned": "the components' spectra overlap so much on the used points that small errors are strongly amplified (no result when they are beyond the solver's limit)",
     "points-excluded": "some points were left out (saturated, above the working range, or above the instrument ceiling)",
     "interferent": "the residual holds structure the library does not explain: something else absorbs, scatters or is shifted",
     "no-residual-dof": "as many unknowns as points: the uncertainty comes from the calibration's noise model, not from the scan",
@@ -265,14 +265,15 @@ def quantify(
     """
     _check_options(baseline, path_length, dilution, ceiling, path_length_tolerance, dilution_tolerance, alpha)
     scans = spectra.to_absorbance()
-    low, high = wavelength_range
-    low = max(low if low is not None else -np.inf, float(library.wavelengths[0]))
-    high = min(high if high is not None else np.inf, float(library.wavelengths[-1]))
+    requested = wavelength_range
+    low = max(requested[0] if requested[0] is not None else -np.inf, float(library.wavelengths[0]), float(scans.wavelengths[0]))
+    high = min(requested[1] if requested[1] is not None else np.inf, float(library.wavelengths[-1]), float(scans.wavelengths[-1]))
     if not low < high:
+        asked = "" if requested == (None, None) else ", the requested range (" + ":".join("" if v is None else f"{v:g}" for v in requested) + " nm)"
         raise AbsolveError(
-            f"the scans ({scans.wavelengths[0]:g}-{scans.wavelengths[-1]:g} nm) and the library "
+            f"the scans ({scans.wavelengths[0]:g}-{scans.wavelengths[-1]:g} nm){asked} and the library "
             f"({library.wavelengths[0]:g}-{library.wavelengths[-1]:g} nm) share no wavelength range",
-            fix="use a library calibrated over the scanned range",
+            fix="use a library calibrated over the scanned range, and a --range inside both",
             file=scans.source,
         )
     scans = scans.restrict(low, high)
@@ -401,6 +402,7 @@ class _Accumulator:
         self.noise_scale = np.full(n_scans, nan)
         self.p_value = np.full(n_scans, nan)
         self.failed = np.zeros(n_scans, dtype=bool)
+        self.singular = np.zeros(n_scans, dtype=bool)
         self.no_model_no_dof = np.zeros(n_scans, dtype=bool)
 
     def fail(self, rows: NDArray[np.intp]) -> None:
@@ -432,8 +434,10 @@ def _solve_group(
     out.condition[rows] = condition
     sensitivity, selectivity, vif = _figures_of_merit(design, n_comp)
     out.sensitivity[rows], out.selectivity[rows], out.vif[rows] = sensitivity, selectivity, vif
-    if condition > 1e10:
+    # Beyond the solver's limit the numbers are not worth reporting: a flagged gap, not an error for the whole batch.
+    if condition > MAX_CONDITION:
         out.fail(rows)
+        out.singular[rows] = True
         return
     solution = solve_nonnegative(design, targets, nonnegative=nonnegative)
     coefficients = solution.coefficients
@@ -603,11 +607,12 @@ def _flags(
     excluded_any = (unusable | above_range | above_ceiling).any(axis=1)
     for i in range(concentration.shape[0]):
         scan: list[str] = []
+        failure = "ill-conditioned" if out.singular[i] else "too-few-points"
         if out.failed[i]:
-            scan.append("too-few-points")
+            scan.append(failure)
         if excluded_any[i]:
             scan.append("points-excluded")
-        if np.nanmax(out.vif[i], initial=0.0) > VIF_LIMIT:
+        if np.nanmax(out.vif[i], initial=0.0) > VIF_LIMIT and not out.singular[i]:
             scan.append("ill-conditioned")
         if interferent[i]:
             scan.append("interferent")
@@ -617,7 +622,7 @@ def _flags(
         for j in range(concentration.shape[1]):
             component: list[str] = []
             if out.failed[i]:
-                component.append("too-few-points")
+                component.append(failure)
             elif out.at_bound[i, j] or concentration[i, j] < lod[i, j]:
                 component.append("below-detection")
             elif concentration[i, j] < loq[i, j]:
