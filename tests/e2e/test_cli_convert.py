@@ -67,14 +67,14 @@ def test_to_absorbance_ten_percent_is_one(tmp_path: Path, capsys: pytest.Capture
     out = tmp_path / "a.csv"
     code, err = _run(capsys, source, "--out", out, "--to-absorbance")
     assert code == 0, err
-    assert "1 unusable points written as empty cells" in err
+    assert "1 unusable points written as 'saturated' cells" in err
     rows = out.read_text().splitlines()
     assert rows[0] == "# quantity: absorbance"
     cells = [row.split(",")[1] for row in rows[2:]]
     # 10 % -> A = 1, 100 % -> A = 0, 0 % (saturated) -> no absorbance (common practice, no source).
     assert float(cells[0]) == pytest.approx(1.0, abs=1e-6)
     assert float(cells[1]) == pytest.approx(0.0, abs=1e-6)
-    assert cells[2] == ""
+    assert cells[2] == "saturated"  # read back as an unusable point
 
     jdx = tmp_path / "a.jdx"
     code, err = _run(capsys, source, "--out", jdx, "--to-absorbance", "--compress")

@@ -207,7 +207,7 @@ def test_format_scan_table_layout() -> None:
         'wavelength_nm,"a, quoted",b',
         "400,0.000000,0.000000",
         "400.5,0.123457,2.000000",  # fixed 6 decimals
-        "1000.125,,-0.250000",  # an unusable point is an empty cell
+        "1000.125,saturated,-0.250000",  # an unusable point is marked, and reads back as one
     ]
 
 
@@ -326,3 +326,12 @@ def test_concentration_matrix_refuses_unknown_and_unlisted_scans(write_file) -> 
     with pytest.raises(AbsolveError, match="unknown component 'x' — use one of y") as caught:
         concentration_matrix(table, ["a", "b", "ghost"], components=["y"])
     assert caught.value.line == 2
+
+
+def test_saturated_cells_round_trip_as_unusable_points(tmp_path: Path) -> None:
+    scans = Spectra([400.0, 401.0], [[0.5, np.nan], [0.25, 0.75]], ["a", "b"])
+    path = tmp_path / "sat.csv"
+    path.write_text(format_scan_table(scans))
+    back = read_scan_table(path)
+    assert back.usable.tolist() == [[True, False], [True, True]]
+    np.testing.assert_allclose(back.values[back.usable], scans.values[scans.usable])

@@ -85,7 +85,7 @@ def convert(
 ) -> None:
     """Convert scans between JCAMP-DX and a CSV scan table.
 
-    A table gets a first line '# quantity: ...' and empty cells for unusable
+    A table gets a first line '# quantity: ...' and 'saturated' cells for unusable
     points; JCAMP-DX gets ##YUNITS and '?' for them. Percent transmittance is
     written to JCAMP-DX as TRANSMITTANCE in 0-1.
     """
@@ -109,5 +109,6 @@ def convert(
     message = f"wrote {out}: {spectra.n_scans} scans x {spectra.n_wavelengths} wavelengths ({written})"
     saturated = spectra.count_saturated()
     if saturated:
-        message += f"; {saturated} unusable points written as {'?' if out_kind == 'jcamp' else 'empty cells'}"
+        marker = "?" if out_kind == "jcamp" else "'saturated' cells"
+        message += f"; {saturated} unusable points written as {marker}"
     say(message)

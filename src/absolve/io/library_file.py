@@ -145,7 +145,7 @@ class _Reader:
 def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
     """Read and validate a library file written by :func:`write_library`."""
     file = Path(path)
-    text = read_text(file)
+    text = read_text(file, expected="a library file", fix="pass a library JSON file written by 'absolve calibrate'")
     try:
         document = json.loads(text)
     except RecursionError:

@@ -207,7 +207,7 @@ def read_model(path: str | os.PathLike[str]) -> InverseModel:
         non-finite number; the message names the file and the key.
     """
     file = str(path)
-    text = read_text(Path(path))
+    text = read_text(Path(path), expected="a model file", fix="pass a model JSON file written by 'absolve train'")
     try:
         document = json.loads(text)
     except RecursionError:

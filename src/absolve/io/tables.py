@@ -42,12 +42,15 @@ __all__ = [
 ]
 
 JCAMP_SUFFIXES = (".jdx", ".dx", ".jcamp")
+# A cell reading this marks a point the instrument could not measure (a saturated
+# detector); it becomes an unusable point, excluded and reported downstream.
+SATURATED = "saturated"
 _MISSING_WORDS = {"", "na", "nan", "n/a", "null", "none", "-", "--", "inf", "-inf", "+inf", "infinity"}
 # Wavelengths a UV-Vis-NIR instrument can report, in nm (common practice, no source).
 _PLAUSIBLE_NM = (150.0, 3500.0)
 
 
-def read_text(path: str | os.PathLike[str]) -> str:
+def read_text(path: str | os.PathLike[str], *, expected: str = "a text table", fix: str = "export the data as CSV or JCAMP-DX text") -> str:
     """Read a text file as UTF-8 (with or without BOM), falling back to Latin-1.
 
     Binary files and missing files raise :class:`AbsolveError`.
@@ -67,7 +70,7 @@ def read_text(path: str | os.PathLike[str]) -> str:
                 return raw.decode("utf-16")
             except UnicodeDecodeError:
                 pass
-        raise AbsolveError("not a text table (binary content)", fix="export the data as CSV or JCAMP-DX text", file=file)
+        raise AbsolveError(f"not {expected} (binary content)", fix=fix, file=file)
     try:
         return raw.decode("utf-8-sig")
     except UnicodeDecodeError:
@@ -270,7 +273,7 @@ def _careful_parse(
             )
         row = []
         for column, cell in enumerate(cells, start=1):
-            value = _parse_number(cell, decimal)
+            value = np.nan if column > 1 and cell.strip().lower() == SATURATED else _parse_number(cell, decimal)
             if value is None:
                 shown = cell.strip()
                 if shown.lower() in _MISSING_WORDS:
@@ -302,7 +305,7 @@ def read_scan_table(path: str | os.PathLike[str], *, decimal: str = ".", quantit
 def _check_quantity(table: WideTable, quantity: Quantity, file: Path) -> None:
     # Allowing a few percent above full scale covers ordinary noise on a clear
     # blank (common practice, no source).
-    column, row = np.unravel_index(int(np.argmax(table.columns)), table.columns.shape)
+    column, row = np.unravel_index(int(np.nanargmax(np.where(np.isfinite(table.columns), table.columns, -np.inf))), table.columns.shape)
     top = float(table.columns[column, row])
     where = {"file": file, "line": int(table.lines[row]), "column": int(column) + 2}
     if quantity == "transmittance" and top > 1.1:
@@ -344,7 +347,7 @@ def read_scans(
 
 def _format_float(value: float) -> str:
     # Rounding first, then adding 0.0, turns every value that rounds to zero into "0.000000", never "-0.000000".
-    return "" if not np.isfinite(value) else f"{round(float(value), 6) + 0.0:.6f}"
+    return SATURATED if not np.isfinite(value) else f"{round(float(value), 6) + 0.0:.6f}"
 
 
 def format_scan_table(spectra: Spectra, *, first_header: str = "wavelength_nm") -> str:
