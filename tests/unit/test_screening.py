@@ -238,6 +238,8 @@ def test_diagnosis_names_the_kind_and_the_place(kind: str, size: float, minimum_
         if result.diagnoses[i].kind == kind
     ]
     assert np.mean(inside) >= 0.9
+    # "high" confidence is earned: measured 100 % right over 1293 such diagnoses (docs/screening.md).
+    assert all(result.diagnoses[i].kind == kind for i in flagged if result.diagnoses[i].confidence == "high")
     assert all(result.diagnoses[i] is None for i in np.flatnonzero(~result.flagged))
 
 
