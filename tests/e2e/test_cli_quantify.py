@@ -15,7 +15,10 @@ import numpy as np
 import pytest
 
 from absolve.cli import main
-from absolve.io.tables import format_scan_table
+from absolve.io.results import spectra_csv
+from absolve.io.tables import format_scan_table, read_scan_table
+from absolve.library import library_from_absorptivities
+from absolve.quantify import quantify
 from absolve.simulate import Instrument, measure
 from absolve.spectra import Spectra
 from absolve.workflow import RESULT_FILES
@@ -173,3 +176,19 @@ def test_bad_input_exits_2_with_one_error_line_and_writes_nothing(
     assert code == 2
     assert expected in line
     assert not out.exists() or not any(out.iterdir())
+
+
+def test_fitted_and_residual_tables_read_back_as_scan_tables_on_a_fine_grid(tmp_path: Path) -> None:
+    # A 0.005 nm grid above 1000 nm: six significant digits would write 1000.02 twice.
+    grid = 1000.0 + 0.005 * np.arange(40)
+    absorptivity = np.vstack([np.linspace(0.2, 0.8, grid.size), np.linspace(0.9, 0.1, grid.size) ** 2])
+    values = np.array([[0.5, 0.3], [0.2, 0.0]]) @ absorptivity
+    result = quantify(Spectra(grid, values, ["a", "b"]), library_from_absorptivities(grid, absorptivity, ["x", "y"], "mg/L"), baseline="none")
+    for which, expected in (("fitted", result.fitted), ("residuals", result.residuals)):
+        path = tmp_path / f"{which}.csv"
+        text = spectra_csv(result, which)
+        path.write_text(text, encoding="utf-8")
+        assert "-0.000000" not in text
+        back = read_scan_table(path)
+        assert np.array_equal(back.wavelengths, grid)
+        np.testing.assert_allclose(back.values, expected, atol=5e-7)

@@ -80,9 +80,11 @@ def spectra_csv(result: MixtureResult, which: str) -> str:
     values = result.fitted if which == "fitted" else result.residuals
     buffer, writer = _writer()
     writer.writerow(["wavelength_nm", *result.scan_names])
-    formatted = np.where(np.isfinite(values), np.char.mod("%.6f", np.nan_to_num(values)), "")
+    # Rounding first, then adding 0.0, writes values that round to zero as "0.000000", never "-0.000000".
+    formatted = np.where(np.isfinite(values), np.char.mod("%.6f", np.round(np.nan_to_num(values), 6) + 0.0), "")
     for j, wavelength in enumerate(result.wavelengths):
-        writer.writerow([f"{wavelength:g}", *formatted[:, j]])
+        # Shortest text that reads back to the same float, as in scan tables: fine grids must not collapse.
+        writer.writerow([np.format_float_positional(wavelength, trim="-"), *formatted[:, j]])
     return buffer.getvalue()
 
 
