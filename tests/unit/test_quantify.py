@@ -150,6 +150,40 @@ def test_noisier_scan_than_model_uses_its_own_residual_variance() -> None:
     assert result.interferent[0]  # nine times the modelled variance is not noise the library explains
 
 
+def test_without_a_noise_model_white_scans_get_the_ols_standard_errors() -> None:
+    # Reference: statsmodels OLS bse (scale ssr / df_resid). White noise, so the residuals' pooled
+    # lag-one correlation is negligible and no correlation is assumed.
+    rng = np.random.default_rng(24)
+    absorptivity = random_absorptivities(GRID, 3, rng)
+    truth = rng.uniform(0.3, 0.7, (20, 3))
+    values = truth @ absorptivity + 0.002 * rng.standard_normal((20, GRID.size))
+    result = quantify(_scans(values), _library(absorptivity), baseline="offset")
+    design = np.column_stack([absorptivity.T, np.ones(GRID.size)])
+    for i in range(20):
+        fit = sm.OLS(values[i], design).fit()
+        np.testing.assert_allclose(result.budget["spectral_noise"][i], fit.bse[:3], rtol=1e-9)
+        assert result.effective_dof[i, 0] == pytest.approx(fit.df_resid, rel=1e-12)
+    assert np.all(np.isnan(result.residual_p_value))  # no model to test the residual against
+
+
+def test_a_batch_gives_each_scan_what_it_gets_alone() -> None:
+    # Scans with different used points and different components at the bound share one call.
+    rng = np.random.default_rng(25)
+    absorptivity = random_absorptivities(GRID, 3, rng)
+    noise = NoiseModel(floor=0.002, proportional=0.01, correlation_length_nm=3.0)
+    library = _library(absorptivity, noise=noise, limit=1.2)
+    truth = np.array([[0.4, 0.3, 0.5], [0.0, 0.6, 0.2], [1.5, 0.2, 0.0], [0.3, 0.0, 0.0], [0.2, 0.2, 0.2]])
+    values = truth @ absorptivity + 0.003 * rng.standard_normal((5, GRID.size))
+    values[4, 20:30] = np.nan
+    batch = quantify(_scans(values), library, path_length_tolerance=0.01)
+    assert len({tuple(row) for row in batch.used}) >= 3 and len({tuple(row) for row in batch.concentration == 0}) >= 3
+    for i in range(5):
+        alone = quantify(_scans(values[i]), library, path_length_tolerance=0.01)
+        for name in ("concentration", "std_uncertainty", "expanded_uncertainty", "upper_limit", "lod", "baseline", "fitted", "noise_scale"):
+            np.testing.assert_allclose(getattr(batch, name)[i], getattr(alone, name)[0], rtol=1e-10, atol=1e-14, err_msg=name)
+        assert batch.flags[i] == alone.flags[0] and batch.scan_flags[i] == alone.scan_flags[0]
+
+
 def test_correlated_heteroscedastic_noise_follows_the_law_of_propagation() -> None:
     # GUM (JCGM 100:2008) 5.2.2 with correlated inputs: u^2(c) = P Sigma P^T with P = (D^T D)^-1 D^T
     # and Sigma_ij = sigma_i sigma_j exp(-|x_i - x_j| / L), built densely with numpy.
