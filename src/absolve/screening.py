@@ -86,6 +86,9 @@ _MIN_ROUGH_DOF = 5
 _BLOCK = 256
 # Singular values below this fraction of a matrix's Frobenius norm count as zero.
 _RANK_TOL = 1e-9
+# Gram-matrix eigenvalues (squared singular values) below this fraction of the squared norm count as
+# zero; well above the rounding of the Gram subtraction (about 1e-16 of the norm squared).
+_GRAM_TOL = 1e-12
 # Width of the narrowest structure the default cosine basis resolves, in nm.
 _SMOOTH_SCALE_NM = 15.0
 # Band widths (Gaussian standard deviation, nm) and scattering exponents tried by the diagnosis.
@@ -573,7 +576,7 @@ def smooth_basis(wavelengths: ArrayLike, n_terms: int) -> NDArray[np.float64]:
 def _default_terms(grid: NDArray[np.float64], n_columns: int) -> int:
     """Terms resolving features of about ``_SMOOTH_SCALE_NM``, leaving most points for the rough part."""
     by_scale = int(round((grid[-1] - grid[0]) / _SMOOTH_SCALE_NM))
-    return int(np.clip(by_scale, 4, 40, dtype=np.int64).clip(max=max(1, (grid.size - n_columns) // 3)))
+    return min(max(by_scale, 4), 40, max(1, (grid.size - n_columns) // 3))
 
 
 def _orthonormal_columns(matrix: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
@@ -631,8 +634,7 @@ def _subspaces(
     overlap = design_basis.transpose(0, 2, 1) @ white_smooth
     gram = white_smooth.transpose(0, 2, 1) @ white_smooth - overlap.transpose(0, 2, 1) @ overlap
     values, vectors = np.linalg.eigh(gram)
-    # Squared singular values, hence the squared tolerance.
-    keep = values > _RANK_TOL**2 * np.einsum("nwk,nwk->n", white_smooth, white_smooth)[:, None] * 1e4
+    keep = values > _GRAM_TOL * np.einsum("nwk,nwk->n", white_smooth, white_smooth)[:, None]
     vectors = vectors * np.where(keep, 1.0 / np.sqrt(np.where(keep, values, 1.0)), 0.0)[:, None, :]
     white_residual = _whiten(residuals, fitted, mask, rho, previous, noise)
     along = np.einsum("nwp,nw->np", design_basis, white_residual)
