@@ -122,8 +122,9 @@ class Diagnosis:
     peak_nm : float
         Wavelength of the largest matched disturbance.
     size_absorbance : float
-        Largest absolute absorbance of the matched disturbance (for "unclassified":
-        of the smooth unexplained residual). Signed: negative means a shortfall.
+        Largest absolute absorbance of the matched disturbance (for "scatter": its rise
+        from the long-wavelength end, since a baseline offset absorbs the flat part; for
+        "unclassified": of the smooth unexplained residual). Signed: negative means a shortfall.
     residual_absorbance : float
         Largest absolute absorbance of the smooth residual the library cannot
         explain (part of a disturbance that resembles library components is
@@ -976,7 +977,12 @@ def _diagnose(
             runner_up_share=share, amplitude_z=abs(z), evidence=evidence, detail={}, message=what + ".",
         )
 
-    peak_nm, value, lo, hi = _half_window(grid, np.where(mask, best.amplitude * best.shape, np.nan))
+    profile = np.where(mask, best.amplitude * best.shape, np.nan)
+    if best.kind == "scatter":
+        # Offset and scattering amplitude trade off against each other (a free offset absorbs the flat
+        # part), so only the rise across the range is well determined: report that.
+        profile = profile - profile[np.flatnonzero(mask)[-1]]
+    peak_nm, value, lo, hi = _half_window(grid, profile)
     confidence = _confidence(share, evidence)
     sureness = {"high": "high confidence", "moderate": "moderate confidence", "low": "low confidence, a best guess"}
     d = best.detail
@@ -984,7 +990,7 @@ def _diagnose(
         "foreign-band": f"An absorber the library does not hold seems present: a band near {d.get('center_nm', peak_nm):.0f} nm "
         f"({lo:.0f}-{hi:.0f} nm) adding up to {value:.2g} absorbance",
         "scatter": f"A smooth rise toward short wavelengths, as turbidity or scattering gives (about lambda^-"
-        f"{d.get('exponent', 4.0):g}), adds about {value:.2g} absorbance at {peak_nm:.0f} nm",
+        f"{d.get('exponent', 4.0):g}), of about {value:.2g} absorbance from {grid[mask][-1]:.0f} to {peak_nm:.0f} nm",
         "wavelength-shift": f"The scan looks shifted by {d.get('shift_nm', 0.0):+.2f} ± {d.get('shift_se_nm', 0.0):.2f} nm "
         f"against the library's wavelength scale (largest effect {value:+.2g} absorbance near {peak_nm:.0f} nm)",
         "nonlinearity": f"The scan falls short of the library where absorbance is highest (up to {abs(value):.2g} "
