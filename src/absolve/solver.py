@@ -73,8 +73,11 @@ class BatchSolution:
         parameters ``>= 0``.
     residual_sum_squares : ndarray, shape (n_scans,)
         ``||design @ x - y||^2`` at the solution, computed without forming
-        residuals as ``y.y - b.x`` (``b = design^T y``), so its absolute
-        round-off is a few ``eps * y.y``; clipped at zero.
+        residuals as ``y.y - x.(2 b - G x)`` (``b = design^T y``,
+        ``G = design^T design``), so its absolute round-off is a few
+        ``eps * (y.y + n_params * sum_j (x_j |design_j|)^2)``: ``eps * y.y``
+        unless an ill-conditioned design gives large, cancelling
+        coefficients. Clipped at zero.
     at_bound : ndarray of bool, shape (n_scans, n_params)
         True where a constrained coefficient is exactly zero: its bound is
         active. Always False for free parameters.
@@ -189,38 +192,32 @@ def solve_nonnegative(
     # overflows; checking it is free, where a full isfinite pass would cost a third of the product.
     _refuse_nonfinite(data, ~np.isfinite(squared_norms))
 
-    tolerance = _kkt_tolerance(singular, squared_norms)
     chosen = method
     if method == "auto":
         chosen = "enumerate" if np.count_nonzero(constrained) <= ENUMERATE_LIMIT else "active-set"
     # Where the unconstrained solution already meets the bounds it is the optimum (zero gradient,
     # lowest objective of all), whatever the method; in routine work that is most scans.
     solution = _thin(np.linalg.inv(gram), products)
+    slack = _Slack.for_design(singular)
     converged = np.ones(data.shape[0], dtype=bool)
     outside = np.zeros(data.shape[0], dtype=bool)
     for row in np.flatnonzero(constrained):
-        outside |= solution[row] < -tolerance
+        outside |= solution[row] < -slack.coefficient * _magnitude(products, solution)
     rest = np.flatnonzero(outside)
     # Columns are gathered with take(): fancy indexing on the last axis returns an F-ordered array,
     # on which the einsum products run five times slower.
     if rest.size and chosen == "enumerate":
-        solution[:, rest] = _enumerate(gram, products.take(rest, axis=1), constrained, tolerance[rest])
+        solution[:, rest] = _enumerate(gram, products.take(rest, axis=1), constrained, slack)
     elif rest.size:
         solution[:, rest], converged[rest] = _active_set(
-            gram, products.take(rest, axis=1), constrained, tolerance[rest], max_iter
+            gram, products.take(rest, axis=1), constrained, slack, max_iter
         )
     # Round-off may leave a held or barely-feasible parameter a hair below zero.
     np.maximum(solution, np.where(constrained, 0.0, -np.inf)[:, None], out=solution)
 
-    # At an exact reduced solution x.(G x - b) = 0, so ||D x - y||^2 = y.y - b.x. Iterates of scans
-    # that did not converge are not such solutions and get the full expression y.y - x.(2 b - G x).
-    rss = squared_norms - np.einsum("ji,ji->i", products, solution)
-    if not converged.all():
-        stuck = np.flatnonzero(~converged)
-        iterate = solution.take(stuck, axis=1)
-        rss[stuck] = squared_norms[stuck] - np.einsum(
-            "ji,ji->i", iterate, 2.0 * products.take(stuck, axis=1) - _thin(gram, iterate)
-        )
+    # ||D x - y||^2 = y.y - x.(2 b - G x). At a reduced solution this equals y.y - b.x, but that
+    # shortcut passes round-off in x on to first order; the full form is stationary at the optimum.
+    rss = squared_norms - np.einsum("ji,ji->i", solution, 2.0 * products - _thin(gram, solution))
     at_bound = (solution == 0.0) & constrained[:, None]
     np.divide(solution, scale[:, None], out=solution)
     return BatchSolution(
@@ -385,17 +382,32 @@ def _thin(matrix: NDArray[np.float64], columns: NDArray[np.float64]) -> NDArray[
     return np.einsum("jk,ki->ji", matrix, columns)
 
 
-def _kkt_tolerance(singular: NDArray[np.float64], squared_norms: NDArray[np.float64]) -> NDArray[np.float64]:
-    """Per-scan slack for sign tests on coefficients and gradients, shape (n_scans,).
+@dataclass(frozen=True)
+class _Slack:
+    """Relative round-off the sign tests allow, for coefficients and for gradients.
 
-    ``singular`` are the singular values of the column-scaled design, so the Gram matrix has
-    eigenvalues ``singular**2``. Then ``|b| <= sqrt(lambda_max) |y|``, and coefficients and
-    gradients are at most about ``sqrt(lambda_max) |y| / lambda_min``; solving with the Gram matrix
-    loses ``cond(G) * eps`` of that to round-off, with a margin for the size of the system.
+    With unit-norm columns the numbers in a candidate (coefficients, ``b``, gradients) share one
+    scale, and errors are relative to it. A reduced solve with the Gram matrix gets coefficients
+    to about ``cond(G) * eps``, ``cond(G)`` bounding that of every principal submatrix. Gradients
+    are residuals of those solves, which a backward-stable solve gets to about ``eps``; a held
+    parameter's gradient also carries the coefficients' error through at most ``cond(D)`` =
+    ``sqrt(cond(G))``. A margin for the size of the system on top of both.
     """
-    largest, smallest = singular[0] ** 2, singular[-1] ** 2
-    slack = 10.0 * singular.size * np.finfo(np.float64).eps * (largest / smallest) * np.sqrt(largest) / smallest
-    return slack * np.sqrt(squared_norms)
+
+    coefficient: float
+    gradient: float
+
+    @classmethod
+    def for_design(cls, singular: NDArray[np.float64]) -> _Slack:
+        """From the singular values of the column-scaled design."""
+        unit = 10.0 * singular.size * np.finfo(np.float64).eps
+        condition = singular[0] / singular[-1]
+        return cls(coefficient=unit * condition**2, gradient=unit * condition)
+
+
+def _magnitude(products: NDArray[np.float64], coefficients: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Size of the numbers in one candidate solution per scan: ``max(|b|, |x|)``, shape (n_scans,)."""
+    return np.maximum(np.abs(products).max(axis=0, initial=0.0), np.abs(coefficients).max(axis=0, initial=0.0))
 
 
 def _masked_gram(gram: NDArray[np.float64], passive: NDArray[np.bool_]) -> NDArray[np.float64]:
@@ -424,7 +436,7 @@ def _enumerate(
     gram: NDArray[np.float64],
     products: NDArray[np.float64],
     constrained: NDArray[np.bool_],
-    tolerance: NDArray[np.float64],
+    slack: _Slack,
 ) -> NDArray[np.float64]:
     """Exact solutions by trying every set of constrained parameters held at zero.
 
@@ -455,11 +467,13 @@ def _enumerate(
         b = products[:, columns]
         width = b.shape[1]
         values = _thin(maps, b).reshape(n_params, n_sets, width)
-        floor = -tolerance[columns]
+        # Each candidate's sign tests allow round-off relative to that candidate's own size.
+        size = np.maximum(np.abs(values).max(axis=0), np.abs(b).max(axis=0))
+        coefficient_floor, gradient_floor = -slack.coefficient * size, -slack.gradient * size
         optimal = np.ones((n_sets, width), dtype=bool)
         feasible = optimal.copy()
         for k, j in enumerate(held_index):
-            passes = values[j] >= floor
+            passes = values[j] >= np.where(held[:, k, None], gradient_floor, coefficient_floor)
             optimal &= passes
             feasible &= passes | held[:, k, None]
         choice = np.argmax(optimal, axis=0)
@@ -485,7 +499,7 @@ def _active_set(
     gram: NDArray[np.float64],
     products: NDArray[np.float64],
     constrained: NDArray[np.bool_],
-    tolerance: NDArray[np.float64],
+    slack: _Slack,
     max_iter: int,
 ) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
     """Lawson-Hanson active-set iterations for all scans together, each with its own passive set.
@@ -505,8 +519,10 @@ def _active_set(
     bounded = constrained[:, None]
     for iteration in range(max_iter + 1):
         # Minus the gradient, for the scans still running.
-        descent = products.take(running, axis=1) - _thin(gram, solution.take(running, axis=1))
-        entering = looking[running] & bounded & ~passive.take(running, axis=1) & (descent > tolerance[running])
+        b, iterate = products.take(running, axis=1), solution.take(running, axis=1)
+        descent = b - _thin(gram, iterate)
+        significant = descent > slack.gradient * _magnitude(b, iterate)
+        entering = looking[running] & bounded & ~passive.take(running, axis=1) & significant
         done = looking[running] & ~entering.any(axis=0)
         converged[running[done]] = True
         running, descent, entering = running[~done], descent[:, ~done], entering[:, ~done]

@@ -17,11 +17,13 @@ from hypothesis import strategies as st
 from scipy.optimize import lsq_linear, nnls
 
 from absolve.errors import AbsolveError
+from absolve.simulate import random_absorptivities
 from absolve.solver import (
     ENUMERATE_LIMIT,
     MAX_CONDITION,
     BatchSolution,
     _enumerate,  # its round-off fallback is only reachable directly
+    _Slack,
     solve_nonnegative,
     unconstrained_solution,
 )
@@ -148,11 +150,66 @@ def test_bounds_only_just_active(method: str) -> None:
     assert solution.at_bound[:, 2].all()
 
 
+def ill_conditioned_problem(seed: int, n_params: int, condition: float) -> tuple[np.ndarray, np.ndarray]:
+    """A design with the given condition number (singular values spread evenly in log) and targets
+    whose unconstrained fits break the bounds."""
+    rng = np.random.default_rng(seed)
+    left = np.linalg.qr(rng.normal(size=(60, n_params)))[0]
+    right = np.linalg.qr(rng.normal(size=(n_params, n_params)))[0]
+    design = left @ np.diag(np.logspace(0.0, -np.log10(condition), n_params)) @ right.T
+    targets = rng.normal(size=(12, n_params)) @ design.T + 0.05 * rng.normal(size=(12, 60))
+    return design, targets
+
+
+@settings(derandomize=True, max_examples=40, deadline=None)
+@given(
+    st.integers(0, 2**31 - 1),
+    st.integers(2, 5),
+    st.sampled_from([1e2, 1e3, 1e4, 1e5]),
+    st.sampled_from(["enumerate", "active-set"]),
+)
+def test_ill_conditioned_designs_match_scipy(seed: int, n_params: int, condition: float, method: str) -> None:
+    """Accuracy degrades like cond^2 * eps (normal equations), never by clipping a wrong candidate."""
+    design, targets = ill_conditioned_problem(seed, n_params, condition)
+    assert np.linalg.cond(design) == pytest.approx(condition, rel=1e-6)
+    solution = solve_nonnegative(design, targets, method=method)
+    reference = np.array([nnls(design, target)[0] for target in targets])  # scipy.optimize.nnls
+    assert solution.converged.all()
+    assert (solution.coefficients >= 0.0).all()
+    scale = np.maximum(np.abs(reference).max(axis=1, keepdims=True), 1e-300)
+    accuracy = 1e3 * condition**2 * np.finfo(float).eps
+    np.testing.assert_allclose(solution.coefficients / scale, reference / scale, rtol=0, atol=accuracy)
+    # The objective is flat along the badly determined direction: it must match much more closely.
+    direct = np.sum((targets - solution.coefficients @ design.T) ** 2, axis=1)
+    reference_rss = np.sum((targets - reference @ design.T) ** 2, axis=1)
+    np.testing.assert_allclose(direct, reference_rss, rtol=1e-9)
+    # The Gram form of the sum of squares cancels terms as large as the coefficients' contributions.
+    size = np.sum(targets**2, axis=1) + n_params * np.sum((solution.coefficients * np.linalg.norm(design, axis=0)) ** 2, axis=1)
+    np.testing.assert_array_less(np.abs(solution.residual_sum_squares - direct), 100 * np.finfo(float).eps * size)
+
+
+def test_clearly_negative_coefficient_of_a_nearly_collinear_pair_is_resolved() -> None:
+    """Two bands differing by a 0.1 % tilt (condition number ~1.5e4): the unconstrained fit gives
+    one component a large negative amount, which must be held at zero and the other re-fitted."""
+    rng = np.random.default_rng(0)
+    grid = np.arange(400.0, 701.0, 2.0)
+    base = random_absorptivities(grid, 1, rng)[0]
+    design = np.column_stack([base, base * (1 + 1e-3 * (grid - 500.0) / 100.0)])
+    target = design @ [0.3, 0.2] + 0.001 * rng.standard_normal(grid.size)
+    assert np.linalg.lstsq(design, target, rcond=None)[0][1] < -0.5  # unconstrained: clearly negative
+    reference = nnls(design, target)[0]  # scipy.optimize.nnls
+    for method in ("enumerate", "active-set"):
+        solution = solve_nonnegative(design, target, method=method)
+        np.testing.assert_allclose(solution.coefficients[0], reference, rtol=1e-7, atol=1e-9)
+        direct = np.sum((target - solution.coefficients[0] @ design.T) ** 2)
+        assert solution.residual_sum_squares[0] == pytest.approx(direct, rel=1e-8)
+
+
 def test_enumeration_falls_back_to_the_best_feasible_candidate() -> None:
     """If round-off defeated every KKT test, the lowest-objective feasible candidate is the optimum.
 
-    Forced here with a negative slack (every sign test demands a margin of 1e-3), on scans whose
-    held parameter has a gradient below that margin, so no candidate passes all tests.
+    Forced here with a negative slack (every sign test demands a margin of 1 % of the candidate's
+    size), on scans whose held parameter has a gradient below that margin, so no candidate passes.
     """
     rng = np.random.default_rng(100)
     design = rng.uniform(0.0, 1.0, (30, 3)) + 0.3 * rng.normal(size=(30, 3))
@@ -160,8 +217,8 @@ def test_enumeration_falls_back_to_the_best_feasible_candidate() -> None:
     gram = scaled.T @ scaled
     coefficients = np.array([[0.8, 0.5, -2e-4], [0.4, 0.9, -5e-4]])  # column 2 just below zero
     targets = coefficients @ scaled.T
-    optimum = _enumerate(gram, scaled.T @ targets.T, np.ones(3, dtype=bool), np.full(2, 1e-6))
-    forced = _enumerate(gram, scaled.T @ targets.T, np.ones(3, dtype=bool), np.full(2, -1e-3))
+    optimum = _enumerate(gram, scaled.T @ targets.T, np.ones(3, dtype=bool), _Slack(1e-12, 1e-12))
+    forced = _enumerate(gram, scaled.T @ targets.T, np.ones(3, dtype=bool), _Slack(-1e-2, -1e-2))
     reference = np.array([nnls(scaled, target)[0] for target in targets])  # scipy.optimize.nnls
     np.testing.assert_allclose(optimum.T, reference, rtol=0, atol=1e-12)
     np.testing.assert_allclose(forced.T, reference, rtol=0, atol=1e-12)
