@@ -71,6 +71,11 @@ class Calibration:
     weighted : bool
         Refit with each point weighted by its inverse noise variance from the
         learned noise model (ordinary least squares when False).
+    standard_baseline : {"none", "offset", "linear"}
+        Baseline of each standard's own (cuvette mismatch, drift), estimated
+        from its residual across wavelengths and removed before the final fit.
+        Without this, standards' offsets leak into the absorptivities as
+        smooth errors wherever the weights vary along wavelength.
 
     Attributes
     ----------
@@ -88,6 +93,7 @@ class Calibration:
     detect_working_range: bool = True
     correct_stray_light: bool = True
     weighted: bool = True
+    standard_baseline: str = "linear"
     library_: ReferenceLibrary = field(init=False, repr=False)
     linear_limit_: float | None = field(init=False, default=None)
     stray_light_: float = field(init=False, default=0.0)
@@ -116,6 +122,8 @@ class Calibration:
         path_lengths : array_like, shape (n_standards,), optional
             Cell path length of each standard in cm (default 1).
         """
+        if self.standard_baseline not in ("none", "offset", "linear"):
+            raise AbsolveError(f"The 'standard_baseline' must be one of none, offset, linear; got {self.standard_baseline!r} instead.")
         if not 0 < self.linearity_tolerance < 0.5:
             raise AbsolveError(f"The 'linearity_tolerance' must lie in (0, 0.5); got {self.linearity_tolerance!r}.")
         scans = standards.to_absorbance()
@@ -148,6 +156,8 @@ class Calibration:
             limit = min(found) if found else None
             fit = _fit_per_wavelength(design, absorbance, trusted if limit is None else trusted & (absorbance <= limit))
         used = trusted if limit is None else trusted & (absorbance <= limit)
+        if self.standard_baseline != "none":
+            absorbance, fit = _remove_standard_baselines(design, absorbance, used, scans.wavelengths, self.standard_baseline)
         noise = _noise_model(fit, scans.wavelengths)
         if noise is not None and self.weighted:
             # Noise grows with absorbance: weight each point by its inverse noise
@@ -275,6 +285,32 @@ def _fit_per_wavelength(
     hat = np.einsum("ij,ljk,ik->il", design, inverse_gram, design) * w
     leverage = np.where(w > 0, hat, np.nan)
     return _Fit(coefficients, std_error, dof.astype(np.int64), residuals, leverage, predicted)
+
+
+def _remove_standard_baselines(
+    design: NDArray[np.float64], absorbance: NDArray[np.float64], used: NDArray[np.bool_], wavelengths: NDArray[np.float64], kind: str
+) -> tuple[NDArray[np.float64], _Fit]:
+    """Estimate and subtract each standard's own baseline, alternating with the per-wavelength fit.
+
+    The per-wavelength intercept takes the baseline common to all standards;
+    what remains of a standard's residual that is constant (or linear) in
+    wavelength is its own cuvette offset or drift, not absorbance.
+    """
+    x = (wavelengths - wavelengths.mean()) / 100.0
+    columns = np.ones((wavelengths.size, 1)) if kind == "offset" else np.column_stack([np.ones_like(x), x])
+    corrected = absorbance
+    fit = _fit_per_wavelength(design, corrected, used)
+    for _ in range(3):
+        residual = np.where(used, fit.residuals, 0.0)
+        weights = used.astype(np.float64)
+        gram = np.einsum("iw,wa,wb->iab", weights, columns, columns)
+        rhs = np.einsum("iw,wa->ia", residual, columns)
+        solvable = np.linalg.matrix_rank(gram) == columns.shape[1]
+        coefficients = np.zeros((absorbance.shape[0], columns.shape[1]))
+        coefficients[solvable] = np.linalg.solve(gram[solvable], rhs[solvable][..., None])[..., 0]
+        corrected = corrected - coefficients @ columns.T
+        fit = _fit_per_wavelength(design, corrected, used)
+    return corrected, fit
 
 
 def _estimate_stray_light(design: NDArray[np.float64], absorbance: NDArray[np.float64], trusted: NDArray[np.bool_]) -> float:

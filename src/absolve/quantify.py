@@ -42,9 +42,10 @@ from numpy.typing import NDArray
 from scipy import stats
 
 from .errors import AbsolveError
-from .library import ReferenceLibrary
+from .library import NoiseModel, ReferenceLibrary
 from .photometry import correct_stray_light
 from .noise import ar1_coefficients, correlated_norm_squared, effective_points, whiten
+from .screening import Screening, screen_residuals
 from .solver import MAX_CONDITION, solve_nonnegative
 from .spectra import Spectra
 
@@ -59,6 +60,7 @@ DEFAULT_CEILING = 2.0
 VIF_LIMIT = 10.0
 _COVERAGE_PROBABILITY = 0.9545  # the probability that k = 2 gives for a normal distribution (GUM 6.2.2)
 _CHUNK = 2048  # scans per block in the covariance step, bounding memory
+_MIN_SCREEN_POINTS = 10  # fewer wavelengths leave no room for a residual test
 
 
 @dataclass(frozen=True, eq=False)
@@ -99,7 +101,10 @@ class MixtureResult:
     excluded : dict of str to ndarray
         Points excluded per scan and reason: ``unusable``, ``above_working_range``, ``above_ceiling``.
     interferent : ndarray of bool, shape (n_scans,)
-        The residual holds structure the library does not explain.
+        The residual holds structure the library does not explain (``screening.flagged``).
+    screening : Screening
+        The interferent screen of every scan: p-values and, for flagged scans,
+        a diagnosis of what the unexplained residual looks like.
     flags : tuple of tuple of tuple of str
         ``flags[scan][component]``: plain keywords (see :data:`FLAG_TEXT`).
     scan_flags : tuple of tuple of str
@@ -135,6 +140,7 @@ class MixtureResult:
     residual_p_value: NDArray[np.float64]
     excluded: Mapping[str, NDArray[np.int64]]
     interferent: NDArray[np.bool_]
+    screening: Screening
     flags: tuple[tuple[tuple[str, ...], ...], ...]
     scan_flags: tuple[tuple[str, ...], ...]
     settings: Mapping[str, Any] = field(default_factory=dict)
@@ -181,6 +187,8 @@ class MixtureResult:
                     "points_used": int(self.used[i].sum()),
                     "excluded": {key: int(value[i]) for key, value in self.excluded.items()},
                     "interferent": bool(self.interferent[i]),
+                    "interferent_p_value": _json_number(self.screening.p_value[i]),
+                    "diagnosis": None if self.screening.diagnoses[i] is None else self.screening.diagnoses[i].summary(),
                     "flags": list(self.scan_flags[i]),
                 }
             )
@@ -315,7 +323,9 @@ def quantify(
     upper = np.where(out.at_bound, np.maximum(out.unconstrained * scale, 0.0) + coverage * std_uncertainty, np.nan)
     lod = 3.3 * out.budget["spectral_noise"] * scale
     loq = 10.0 * out.budget["spectral_noise"] * scale
-    interferent = out.p_value < alpha
+    residuals = np.where(used, values - out.fitted, np.nan)
+    screening = _screen(grid, residuals, out, design, used, std_error * path_length, n_comp, library.noise, alpha)
+    interferent = screening.flagged
     flags, scan_flags = _flags(out, concentration, lod, loq, library, dilution, used, unusable, above_range, above_ceiling, interferent)
     return MixtureResult(
         scan_names=scans.names,
@@ -336,7 +346,7 @@ def quantify(
         variance_inflation=out.vif,
         baseline=out.baseline,
         fitted=out.fitted,
-        residuals=np.where(used, values - out.fitted, np.nan),
+        residuals=residuals,
         used=used,
         rms_residual=out.rms,
         condition_number=out.condition,
@@ -349,6 +359,7 @@ def quantify(
             "above_ceiling": above_ceiling.sum(axis=1),
         },
         interferent=interferent,
+        screening=screening,
         flags=flags,
         scan_flags=scan_flags,
         settings={
@@ -464,6 +475,56 @@ def _solve_group(
         members = np.flatnonzero(free_groups.reshape(-1) == f_index)
         _propagate(out, rows[members], design, free, n_comp, sigma[members], whitened[members], phi,
                    absorptivity[:, pattern], std_error[:, pattern], coefficients[members, :n_comp], noise is not None, alpha)
+
+
+def _screen(
+    grid: NDArray[np.float64],
+    residuals: NDArray[np.float64],
+    out: _Accumulator,
+    design: NDArray[np.float64],
+    used: NDArray[np.bool_],
+    std_error: NDArray[np.float64],
+    n_comp: int,
+    noise: NoiseModel | None,
+    alpha: float,
+) -> Screening:
+    """Interferent screen of every fitted scan (see :mod:`absolve.screening`).
+
+    The residual also holds the calibration's absorptivity errors times the
+    concentrations; that variance is added to the noise model's so that an
+    imperfect library is not mistaken for an interferent. Without a noise
+    model in the library, one is estimated from the batch's residuals: the
+    screen's main test is a ratio within each scan, so only the correlation
+    length matters, and that is a property of the instrument.
+    """
+    fitted_ok = ~out.failed & np.isfinite(out.fitted).any(axis=1)
+    if grid.size < _MIN_SCREEN_POINTS:
+        return _unscreened(residuals.shape[0], alpha, f"not screened: {grid.size} wavelengths are too few")
+    model = noise if noise is not None else _batch_noise_model(residuals[fitted_ok], grid)
+    extra = np.nan_to_num(out.concentration) ** 2 @ std_error**2
+    usable = used & np.isfinite(residuals) & fitted_ok[:, None]
+    return screen_residuals(
+        grid, np.nan_to_num(residuals), np.nan_to_num(out.fitted), design, model,
+        usable=usable, alpha=alpha, extra_variance=extra,
+    )
+
+
+def _unscreened(n_scans: int, alpha: float, reason: str) -> Screening:
+    """A screening record for scans that cannot be tested (too few points): no flags, NaN statistics."""
+    nan = np.full(n_scans, np.nan)
+    zero = np.zeros(n_scans, dtype=np.int64)
+    return Screening(
+        statistic=nan, p_value=nan.copy(), flagged=np.zeros(n_scans, dtype=bool), alpha=alpha, method=reason,
+        diagnoses=(None,) * n_scans, smooth_p=nan.copy(), omnibus_p=nan.copy(), noise_ratio=nan.copy(),
+        durbin_watson=nan.copy(), smooth_dof=zero, rough_dof=zero.copy(),
+    )
+
+
+def _batch_noise_model(residuals: NDArray[np.float64], grid: NDArray[np.float64]) -> NoiseModel:
+    """White-or-AR(1) noise model from a batch's residuals, for libraries without one."""
+    finite = residuals[np.isfinite(residuals)]
+    floor = float(np.sqrt(np.mean(finite**2))) if finite.size else 1e-3
+    return NoiseModel(floor=max(floor, 1e-6), proportional=0.0, correlation_length_nm=_scan_correlation_length(np.nan_to_num(residuals), grid))
 
 
 def _figures_of_merit(design: NDArray[np.float64], n_comp: int) -> tuple[NDArray, NDArray, NDArray]:

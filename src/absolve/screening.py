@@ -519,19 +519,27 @@ def prewhiten(
         )
     mask = _usable_points(usable, lev.shape, lev)
     rho, previous, _ = _ar_links(grid, mask, noise.correlation_length_nm)
-    return _whiten(data, lev, mask, rho, previous, noise)
+    return _whiten(data, _noise_sd(noise, lev, mask), mask, rho, previous)
+
+
+def _noise_sd(
+    noise: NoiseModel, level: NDArray[np.float64], mask: NDArray[np.bool_], extra_variance: NDArray[np.float64] | None = None
+) -> NDArray[np.float64]:
+    """Noise standard deviation at each point: the model at ``level``, plus any extra variance."""
+    sd = noise.standard_deviation(np.where(mask, level, 0.0))
+    if extra_variance is None:
+        return sd
+    return np.sqrt(sd**2 + np.where(mask, extra_variance, 0.0))
 
 
 def _whiten(
     data: NDArray[np.float64],
-    level: NDArray[np.float64],
+    sd: NDArray[np.float64],
     mask: NDArray[np.bool_],
     rho: NDArray[np.float64],
     previous: NDArray[np.intp],
-    noise: NoiseModel,
 ) -> NDArray[np.float64]:
-    """Prais-Winsten whitening of (n, n_wl) or (n, n_wl, q) values; 0 at unusable points."""
-    sd = noise.standard_deviation(np.where(mask, level, 0.0))
+    """Prais-Winsten whitening of (n, n_wl) or (n, n_wl, q) values with point standard deviations ``sd``; 0 at unusable points."""
     if data.ndim == 3:
         sd, rho, mask, previous = sd[..., None], rho[..., None], mask[..., None], previous[..., None]
     z = np.where(mask, data, 0.0) / sd
@@ -604,6 +612,7 @@ class _Subspaces:
     sd: NDArray[np.float64]
     noise: NoiseModel
     design_basis: NDArray[np.float64]  # (n, n_wl, p) orthonormal, zero columns beyond the rank
+    guard_basis: NDArray[np.float64]  # (n, n_wl, 2p) orthonormal: the design and its smooth part
     design_rank: NDArray[np.int64]
     white_smooth: NDArray[np.float64]  # (n, n_wl, k) whitened cosine basis
     smooth_vectors: NDArray[np.float64]  # (n, k, k) Gram eigenvectors scaled by 1/sqrt(eigenvalue), 0 if dropped
@@ -613,8 +622,17 @@ class _Subspaces:
 
     def smooth_orthonormal(self, i: int) -> NDArray[np.float64]:
         """Orthonormal basis (n_wl, k; zero columns beyond the rank) of scan ``i``'s smooth subspace."""
-        projected = self.white_smooth[i] - self.design_basis[i] @ (self.design_basis[i].T @ self.white_smooth[i])
+        projected = self.white_smooth[i] - self.guard_basis[i] @ (self.guard_basis[i].T @ self.white_smooth[i])
         return projected @ self.smooth_vectors[i]
+
+
+def _smooth_projection(design: NDArray[np.float64], basis: NDArray[np.float64], mask: NDArray[np.bool_]) -> NDArray[np.float64]:
+    """Least-squares projection of every design column onto the smooth basis over each scan's usable points."""
+    weights = mask.astype(np.float64)
+    gram = np.einsum("wk,nw,wl->nkl", basis, weights, basis)
+    rhs = np.einsum("wk,nw,nwp->nkp", basis, weights, design)
+    coefficients = np.linalg.pinv(gram, hermitian=True) @ rhs
+    return np.einsum("wk,nkp->nwp", basis, coefficients)
 
 
 def _subspaces(
@@ -625,25 +643,35 @@ def _subspaces(
     mask: NDArray[np.bool_],
     basis: NDArray[np.float64],
     noise: NoiseModel,
+    extra_variance: NDArray[np.float64] | None = None,
 ) -> _Subspaces:
     rho, previous, linked = _ar_links(grid, mask, noise.correlation_length_nm)
-    sd = noise.standard_deviation(np.where(mask, fitted, 0.0))
-    white_design = _whiten(design, fitted, mask, rho, previous, noise)
+    sd = _noise_sd(noise, fitted, mask, extra_variance)
+    white_design = _whiten(design, sd, mask, rho, previous)
     design_basis, design_rank = _orthonormal_columns(white_design)
-    white_smooth = _whiten(np.broadcast_to(basis, design.shape[:2] + basis.shape[1:]), fitted, mask, rho, previous, noise)
-    # Gram matrix of the smooth basis after projection off the design: S'S - (U'S)'(U'S).
-    overlap = design_basis.transpose(0, 2, 1) @ white_smooth
+    # The smooth subspace is kept clear of the design *and of its smooth part*.
+    # A library estimated from noisy standards explains a sample as a noisy
+    # version of its true, smooth spectrum; what is left over then lies along
+    # the smooth part of the library spectra, and a test looking there would
+    # mistake the calibration's noise for an interferent. Interferents shaped
+    # like a smoothed library spectrum could not be told from a concentration
+    # error anyway, so little power is lost.
+    smooth_part = _smooth_projection(design, basis, mask)
+    guard_basis, _ = _orthonormal_columns(np.concatenate([white_design, _whiten(smooth_part, sd, mask, rho, previous)], axis=2))
+    white_smooth = _whiten(np.broadcast_to(basis, design.shape[:2] + basis.shape[1:]), sd, mask, rho, previous)
+    # Gram matrix of the smooth basis after projection off the guard: S'S - (G'S)'(G'S).
+    overlap = guard_basis.transpose(0, 2, 1) @ white_smooth
     gram = white_smooth.transpose(0, 2, 1) @ white_smooth - overlap.transpose(0, 2, 1) @ overlap
     values, vectors = np.linalg.eigh(gram)
     keep = values > _GRAM_TOL * np.einsum("nwk,nwk->n", white_smooth, white_smooth)[:, None]
     vectors = vectors * np.where(keep, 1.0 / np.sqrt(np.where(keep, values, 1.0)), 0.0)[:, None, :]
-    white_residual = _whiten(residuals, fitted, mask, rho, previous, noise)
+    white_residual = _whiten(residuals, sd, mask, rho, previous)
     along = np.einsum("nwp,nw->np", design_basis, white_residual)
     off_design = white_residual - np.einsum("nwp,np->nw", design_basis, along)
-    # The residual is orthogonal to the design, so its smooth coordinates need no projection of the basis.
-    coords = np.einsum("nkj,nk->nj", vectors, np.einsum("nwk,nw->nk", white_smooth, off_design))
+    projected_smooth = white_smooth - guard_basis @ overlap
+    coords = np.einsum("nkj,nk->nj", vectors, np.einsum("nwk,nw->nk", projected_smooth, off_design))
     return _Subspaces(
-        mask, rho, previous, linked, sd, noise, design_basis, design_rank, white_smooth, vectors, keep.sum(axis=1),
+        mask, rho, previous, linked, sd, noise, design_basis, guard_basis, design_rank, white_smooth, vectors, keep.sum(axis=1),
         off_design, coords,
     )
 
@@ -664,8 +692,13 @@ def screen_residuals(
     noise_tolerance: float = 1.5,
     omnibus_share: float = 0.1,
     diagnose: bool = True,
+    extra_variance: ArrayLike | None = None,
 ) -> Screening:
     """Test each scan's fit residual for structure the reference library does not explain.
+
+    ``extra_variance`` (n_scans, n_wavelengths), optional, adds known variance
+    to the noise model's at each point, e.g. the absorptivity uncertainty
+    times the fitted concentrations, which the residual also holds.
 
     The whitened residual (see :func:`prewhiten`) is projected off the whitened
     design, leaving ``m - rank`` degrees of freedom of pure noise when the
@@ -756,6 +789,9 @@ def screen_residuals(
     mask = _usable_points(usable, resid.shape, resid, fit)
     terms = _default_terms(grid, x.shape[2]) if smooth_terms is None else smooth_terms
     basis = smooth_basis(grid, terms)
+    extra = None if extra_variance is None else _as_float("extra_variance", extra_variance, 2)
+    if extra is not None and (extra.shape != resid.shape or np.any(extra[mask] < 0)):
+        raise AbsolveError(f"extra_variance must be (n_scans, {grid.size}) and >= 0, got shape {extra.shape}")
 
     energy = np.empty(n_scans)
     smooth_energy = np.empty(n_scans)
@@ -766,7 +802,7 @@ def screen_residuals(
         block = slice(start, min(start + _BLOCK, n_scans))
         # Stacks of small matrices: BLAS threads only add synchronisation (tens of times slower on a busy machine).
         with threadpool_limits(limits=1, user_api="blas"):
-            sub = _subspaces(grid, resid[block], fit[block], x[block], mask[block], basis, noise)
+            sub = _subspaces(grid, resid[block], fit[block], x[block], mask[block], basis, noise, None if extra is None else extra[block])
         u = sub.residual
         energy[block] = np.einsum("nw,nw->n", u, u)
         smooth_energy[block] = np.einsum("nk,nk->n", sub.coords, sub.coords)
@@ -793,7 +829,7 @@ def screen_residuals(
         for i in np.flatnonzero(flagged):
             one = slice(i, i + 1)
             with threadpool_limits(limits=1, user_api="blas"):
-                sub = _subspaces(grid, resid[one], fit[one], x[one], mask[one], basis, noise)
+                sub = _subspaces(grid, resid[one], fit[one], x[one], mask[one], basis, noise, None if extra is None else extra[one])
                 diagnoses[i] = _diagnose(grid, fit[i], sub, smooth_p[i] < (1.0 - omnibus_share) * alpha, fixed)
     method = (
         f"whitened smooth-subspace F test ({terms} cosine terms) + omnibus chi-square at {noise_tolerance:g}x "
@@ -1098,9 +1134,10 @@ def explain_with_suspects(
         first = scipy.optimize.lsq_linear(x[i, rows], y[i, rows], bounds=(lower, np.inf), method="bvls")
         level[i] = x[i] @ first.x
     rho, previous, _ = _ar_links(grid, mask, noise.correlation_length_nm)
-    wy = _whiten(y, level, mask, rho, previous, noise)
-    wx = _whiten(x, level, mask, rho, previous, noise)
-    wc = _whiten(np.broadcast_to(suspects.T, (n_scans,) + suspects.T.shape), level, mask, rho, previous, noise)
+    sd = _noise_sd(noise, level, mask)
+    wy = _whiten(y, sd, mask, rho, previous)
+    wx = _whiten(x, sd, mask, rho, previous)
+    wc = _whiten(np.broadcast_to(suspects.T, (n_scans,) + suspects.T.shape), sd, mask, rho, previous)
 
     amount = np.full((n_scans, n_cand), np.nan)
     amount_se = np.full((n_scans, n_cand), np.nan)

@@ -58,15 +58,23 @@ def fit_csv(result: MixtureResult, extra: dict[str, list[str]] | None = None) ->
     buffer, writer = _writer()
     extra = extra or {}
     writer.writerow(
-        ["scan", "rms_residual", "condition_number", "interferent", "residual_p_value", "residual_dof",
+        ["scan", "rms_residual", "condition_number", "interferent", "interferent_p_value", "diagnosis", "diagnosis_confidence",
+         "diagnosis_window_nm", "unexplained_absorbance", "residual_p_value", "residual_dof",
          "noise_scale", "points_used", "points_excluded", *extra, "flags"]
     )
     excluded = sum(result.excluded.values())
+    diagnoses = result.screening.diagnoses
     for i, scan in enumerate(result.scan_names):
+        diagnosis = diagnoses[i]
         writer.writerow(
             [
                 scan, _number(result.rms_residual[i]), _number(result.condition_number[i], ".4g"),
-                "true" if result.interferent[i] else "false", _number(result.residual_p_value[i], ".4g"),
+                "true" if result.interferent[i] else "false", _number(result.screening.p_value[i], ".4g"),
+                "" if diagnosis is None else diagnosis.kind,
+                "" if diagnosis is None else diagnosis.confidence,
+                "" if diagnosis is None else f"{diagnosis.window_nm[0]:g}-{diagnosis.window_nm[1]:g}",
+                "" if diagnosis is None else _number(diagnosis.size_absorbance, ".3g"),
+                _number(result.residual_p_value[i], ".4g"),
                 int(result.residual_dof[i]), _number(result.noise_scale[i], ".4g"),
                 int(result.used[i].sum()), int(excluded[i]), *(values[i] for values in extra.values()),
                 ";".join(result.scan_flags[i]),
