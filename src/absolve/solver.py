@@ -223,7 +223,11 @@ def solve_nonnegative(
 
     # ||D x - y||^2 = y.y - x.(2 b - G x). At a reduced solution this equals y.y - b.x, but that
     # shortcut passes round-off in x on to first order; the full form is stationary at the optimum.
-    rss = squared_norms - np.einsum("ji,ji->i", solution, 2.0 * products - _thin(gram, solution))
+    # In place, twice: a fresh (n_params, n_scans) temporary costs more in page faults than a pass.
+    gradient_less_b = _thin(gram, solution)
+    gradient_less_b -= products
+    gradient_less_b -= products
+    rss = squared_norms + np.einsum("ji,ji->i", solution, gradient_less_b)
     at_bound = (solution == 0.0) & constrained[:, None]
     np.divide(solution, scale[:, None], out=solution)
     return BatchSolution(
