@@ -156,6 +156,8 @@ class Calibration:
             limit = min(found) if found else None
             fit = _fit_per_wavelength(design, absorbance, trusted if limit is None else trusted & (absorbance <= limit))
         used = trusted if limit is None else trusted & (absorbance <= limit)
+        as_measured = absorbance
+        weights: NDArray[np.float64] | None = None
         if self.standard_baseline != "none":
             absorbance, fit = _remove_standard_baselines(design, absorbance, used, scans.wavelengths, self.standard_baseline)
         noise = _noise_model(fit, scans.wavelengths)
@@ -163,10 +165,12 @@ class Calibration:
             # Noise grows with absorbance: weight each point by its inverse noise
             # variance so that standard errors are honest at every level, then
             # learn the noise model again from the weighted fit.
-            fit = _fit_per_wavelength(design, absorbance, used, 1.0 / noise.standard_deviation(fit.predicted) ** 2)
+            weights = 1.0 / noise.standard_deviation(fit.predicted) ** 2
+            fit = _fit_per_wavelength(design, absorbance, used, weights)
             noise = _noise_model(fit, scans.wavelengths) or noise
         self.linear_limit_ = limit
         self.stray_light_ = stray
+        screening_scale = 1.0 if noise is None else _screening_scale(design, as_measured, used, weights, noise, scans.wavelengths)
         highest = float(np.max(np.where(used, absorbance, -np.inf)))
         details = tuple(
             _audit(
@@ -184,6 +188,7 @@ class Calibration:
             linear_limit_absorbance=limit if limit is not None else highest,
             noise=noise,
             stray_light=stray,
+            screening_scale=screening_scale,
             residual_dof=int(np.median(fit.residual_dof)),
             provenance=dict(provenance or {}),
         )
@@ -313,6 +318,67 @@ def _remove_standard_baselines(
     return corrected, fit
 
 
+def _screening_scale(
+    design: NDArray[np.float64],
+    absorbance: NDArray[np.float64],
+    used: NDArray[np.bool_],
+    weights: NDArray[np.float64] | None,
+    noise: NoiseModel,
+    wavelengths: NDArray[np.float64],
+) -> float:
+    """How much larger the interferent screen's statistic runs on clean scans than its theory says.
+
+    Each standard is a scan known to hold nothing but the library's
+    components. It is fitted, as a sample would be, against a library
+    calibrated without it, and its residual screened as
+    :func:`absolve.quantify.quantify` screens samples. The median statistic
+    over the standards, against the median of its F distribution, gives a
+    factor (never below 1) that corrects the screen for what the noise model
+    cannot capture: an imperfect correlation length and the noise in the
+    library itself.
+    """
+    from .screening import screen_residuals
+
+    n_std = design.shape[0]
+    n_comp = design.shape[1] - 1
+    if wavelengths.size < 10 or n_std < 5:
+        return 1.0
+    residuals = np.zeros_like(absorbance)
+    fitted = np.zeros_like(absorbance)
+    designs = np.zeros((n_std, wavelengths.size, n_comp + 1))
+    extra = np.zeros_like(absorbance)
+    usable = np.zeros_like(used)
+    for i in range(n_std):
+        others = used.copy()
+        others[i] = False
+        try:
+            left_out = _fit_per_wavelength(design, absorbance, others, weights)
+        except AbsolveError:
+            continue
+        columns = np.column_stack([left_out.coefficients[:n_comp].T, np.ones(wavelengths.size)])
+        rows = used[i]
+        if rows.sum() < 10:
+            continue
+        beta, *_ = np.linalg.lstsq(columns[rows], absorbance[i, rows], rcond=None)
+        designs[i] = columns
+        fitted[i] = columns @ beta
+        residuals[i] = np.where(rows, absorbance[i] - fitted[i], 0.0)
+        extra[i] = beta[:n_comp] ** 2 @ left_out.std_error[:n_comp] ** 2
+        usable[i] = rows
+    keep = usable.any(axis=1)
+    if keep.sum() < 5:
+        return 1.0
+    result = screen_residuals(
+        wavelengths, residuals[keep], fitted[keep], designs[keep], noise,
+        usable=usable[keep], extra_variance=extra[keep], diagnose=False,
+    )
+    testable = np.isfinite(result.statistic)
+    if testable.sum() < 5:
+        return 1.0
+    expected = stats.f.median(result.smooth_dof[testable], result.rough_dof[testable])
+    return float(np.clip(np.median(result.statistic[testable] / expected), 1.0, 10.0))
+
+
 def _estimate_stray_light(design: NDArray[np.float64], absorbance: NDArray[np.float64], trusted: NDArray[np.bool_]) -> float:
     """Stray-light fraction that makes the standards most linear (bounded 1-D least squares).
 
@@ -414,6 +480,10 @@ def _noise_model(fit: _Fit, wavelengths: NDArray[np.float64]) -> NoiseModel | No
     floor, proportional = float(np.sqrt(terms[0])), float(np.sqrt(terms[1]))
     if floor == 0 and proportional == 0:
         return None
+    # Every detector has some noise at zero absorbance; a zero floor (the fit's
+    # boundary, when the standards hardly sample low absorbance) would give such
+    # points infinite weight. A twentieth of the typical noise is a safe minimum.
+    floor = max(floor, 0.05 * float(np.sqrt(np.median(bin_variance))))
     sd = np.sqrt(floor**2 + (proportional * level) ** 2)
     standardised = np.where(usable, centred / np.where(sd > 0, sd, 1.0), np.nan)
     lagged = standardised[:, 1:] * standardised[:, :-1]

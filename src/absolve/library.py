@@ -143,6 +143,9 @@ class ReferenceLibrary:
     stray_light : float
         Stray-light fraction found in the standards; samples are corrected the
         same way before fitting (0: no correction).
+    screening_scale : float
+        Empirical correction (>= 1) of the interferent screen's null
+        distribution, learned from the standards left out one at a time.
     residual_dof : int
         Degrees of freedom of the absorptivity standard errors (0 when unknown).
     provenance : dict
@@ -157,6 +160,7 @@ class ReferenceLibrary:
     linear_limit_absorbance: float | None = None
     noise: NoiseModel | None = None
     stray_light: float = 0.0
+    screening_scale: float = 1.0
     residual_dof: int = 0
     provenance: Mapping[str, Any] = field(default_factory=dict)
 
@@ -175,6 +179,8 @@ class ReferenceLibrary:
             )
         if grid.size < 2 or not np.all(np.diff(grid) > 0):
             raise AbsolveError("library wavelengths must be at least two, strictly increasing")
+        if not (np.isfinite(self.screening_scale) and 1.0 <= self.screening_scale < 100.0):
+            raise AbsolveError(f"screening scale must lie in [1, 100); got {self.screening_scale!r}")
         if not (np.isfinite(self.stray_light) and 0 <= self.stray_light < 0.1):
             raise AbsolveError(f"stray-light fraction must lie in [0, 0.1); got {self.stray_light!r}")
         if not (np.all(np.isfinite(k)) and np.all(np.isfinite(se)) and np.all(se >= 0)):

@@ -324,7 +324,7 @@ def quantify(
     lod = 3.3 * out.budget["spectral_noise"] * scale
     loq = 10.0 * out.budget["spectral_noise"] * scale
     residuals = np.where(used, values - out.fitted, np.nan)
-    screening = _screen(grid, residuals, out, design, used, std_error * path_length, n_comp, library.noise, alpha)
+    screening = _screen(grid, residuals, out, design, used, std_error * path_length, library.noise, library.screening_scale, alpha)
     interferent = screening.flagged
     flags, scan_flags = _flags(out, concentration, lod, loq, library, dilution, used, unusable, above_range, above_ceiling, interferent)
     return MixtureResult(
@@ -484,8 +484,8 @@ def _screen(
     design: NDArray[np.float64],
     used: NDArray[np.bool_],
     std_error: NDArray[np.float64],
-    n_comp: int,
     noise: NoiseModel | None,
+    null_scale: float,
     alpha: float,
 ) -> Screening:
     """Interferent screen of every fitted scan (see :mod:`absolve.screening`).
@@ -505,7 +505,7 @@ def _screen(
     usable = used & np.isfinite(residuals) & fitted_ok[:, None]
     return screen_residuals(
         grid, np.nan_to_num(residuals), np.nan_to_num(out.fitted), design, model,
-        usable=usable, alpha=alpha, extra_variance=extra,
+        usable=usable, alpha=alpha, extra_variance=extra, null_scale=null_scale,
     )
 
 

@@ -693,12 +693,18 @@ def screen_residuals(
     omnibus_share: float = 0.1,
     diagnose: bool = True,
     extra_variance: ArrayLike | None = None,
+    null_scale: float = 1.0,
 ) -> Screening:
     """Test each scan's fit residual for structure the reference library does not explain.
 
     ``extra_variance`` (n_scans, n_wavelengths), optional, adds known variance
     to the noise model's at each point, e.g. the absorptivity uncertainty
     times the fitted concentrations, which the residual also holds.
+    ``null_scale`` (>= 1) divides the smooth F statistic: an empirical
+    correction of its null distribution, learned from scans known to be
+    clean (the calibration standards, left out one at a time), for what the
+    noise model cannot capture (an imperfect correlation length, noise in the
+    library itself).
 
     The whitened residual (see :func:`prewhiten`) is projected off the whitened
     design, leaving ``m - rank`` degrees of freedom of pure noise when the
@@ -773,6 +779,8 @@ def screen_residuals(
     alpha = _check_alpha(alpha)
     if not (isinstance(noise_tolerance, (int, float)) and noise_tolerance >= 1.0):
         raise AbsolveError(f"noise_tolerance must be a number >= 1, got {noise_tolerance!r}")
+    if not (np.isfinite(null_scale) and null_scale >= 1.0):
+        raise AbsolveError(f"null_scale must be a finite number >= 1, got {null_scale!r}")
     if not (isinstance(omnibus_share, (int, float)) and 0.0 < omnibus_share < 1.0):
         raise AbsolveError(f"omnibus_share must be strictly between 0 and 1, got {omnibus_share!r}")
     grid = _check_grid(wavelengths)
@@ -815,7 +823,7 @@ def screen_residuals(
     testable = (rough_dof >= _MIN_ROUGH_DOF) & (smooth_dof >= 1)
     rough_energy = np.maximum(energy - smooth_energy, 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
-        statistic = np.where(testable, (smooth_energy / smooth_dof) / (rough_energy / rough_dof), np.nan)
+        statistic = np.where(testable, (smooth_energy / smooth_dof) / (rough_energy / rough_dof), np.nan) / null_scale
         smooth_p = np.where(testable, scipy.stats.f.sf(statistic, smooth_dof, rough_dof), np.nan)
         omnibus_p = np.where(testable, scipy.stats.chi2.sf(energy / noise_tolerance**2, total_dof), np.nan)
         noise_ratio = np.where(testable, np.sqrt(rough_energy / rough_dof), np.nan)

@@ -87,6 +87,7 @@ def library_to_json(library: ReferenceLibrary) -> str:
         "linear_limit_absorbance": _finite_or_none(library.linear_limit_absorbance),
         "residual_dof": int(library.residual_dof),
         "stray_light_fraction": float(library.stray_light),
+        "screening_null_scale": float(library.screening_scale),
         "noise_model": None
         if noise is None
         else {"floor": noise.floor, "proportional": noise.proportional, "correlation_length_nm": noise.correlation_length_nm},
@@ -207,6 +208,7 @@ def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
     if not isinstance(dof, int) or isinstance(dof, bool) or dof < 0:
         raise read.fail("residual_dof", f"expected a whole number >= 0, found {dof!r}")
     stray = read.number(document.get("stray_light_fraction", 0.0), "stray_light_fraction")
+    screening_scale = read.number(document.get("screening_null_scale", 1.0), "screening_null_scale")
     provenance = document.get("provenance") or {}
     if not isinstance(provenance, dict):
         raise read.fail("provenance", "expected an object")
@@ -220,6 +222,7 @@ def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
             linear_limit_absorbance=limit,
             noise=noise,
             stray_light=stray,  # type: ignore[arg-type]
+            screening_scale=screening_scale,  # type: ignore[arg-type]
             residual_dof=dof,
             provenance=provenance,
         )
