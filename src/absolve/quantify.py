@@ -49,7 +49,7 @@ from .screening import Screening, screen_residuals
 from .solver import MAX_CONDITION, solve_nonnegative
 from .spectra import Spectra
 
-__all__ = ["Baseline", "BASELINES", "MixtureResult", "quantify", "DEFAULT_CEILING"]
+__all__ = ["Baseline", "BASELINES", "MixtureResult", "baseline_columns", "quantify", "DEFAULT_CEILING"]
 
 Baseline = Literal["none", "offset", "linear"]
 BASELINES: tuple[str, ...] = get_args(Baseline)
@@ -219,7 +219,7 @@ def _json_number(value: float) -> float | None:
     return number if np.isfinite(number) else None
 
 
-def _baseline_columns(wavelengths: NDArray[np.float64], baseline: str) -> NDArray[np.float64]:
+def baseline_columns(wavelengths: NDArray[np.float64], baseline: str) -> NDArray[np.float64]:
     if baseline == "none":
         return np.empty((wavelengths.size, 0))
     offset = np.ones((wavelengths.size, 1))
@@ -289,7 +289,7 @@ def quantify(
     grid = scans.wavelengths
     n_scans, n_wl = scans.values.shape
     n_comp = library.n_components
-    design = np.column_stack([absorptivity.T * path_length, _baseline_columns(grid, baseline)])
+    design = np.column_stack([absorptivity.T * path_length, baseline_columns(grid, baseline)])
     n_params = design.shape[1]
     values = correct_stray_light(scans.values, library.stray_light)
     unusable = ~np.isfinite(values)
