@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from typing import TYPE_CHECKING
+import sys
+import threading
+import time
+from collections.abc import Callable, Sequence
+from types import TracebackType
+from typing import TYPE_CHECKING, TextIO
 
 import numpy as np
 
@@ -12,7 +16,7 @@ from .library import ReferenceLibrary
 if TYPE_CHECKING:
     from .quantify import MixtureResult
 
-__all__ = ["format_table", "library_report", "mixture_report"]
+__all__ = ["ProgressLine", "format_table", "library_report", "mixture_report"]
 
 
 def format_table(headers: Sequence[str], rows: Sequence[Sequence[str]], *, align: str | None = None) -> str:
@@ -111,3 +115,94 @@ def mixture_report(result: MixtureResult, *, max_scans: int = 200) -> str:
     for flag in used:
         lines.append(f"{flag}: {FLAG_TEXT[flag]}")
     return "\n".join(lines)
+
+
+class ProgressLine:
+    """A one-line progress indicator for long runs, redrawn in place on a terminal's stderr.
+
+    Shows the current step, its count when it has one, and the time so far.
+    Nothing is shown for the first ``delay`` seconds (short runs stay clean),
+    nor ever when ``quiet`` or when the stream is not a terminal (a pipe, a log
+    file, a test's capture). While one long library call runs and cannot
+    report, a background thread keeps the elapsed time moving. The line is
+    erased when the ``with`` block ends, so the results print on a clean line.
+
+    Parameters
+    ----------
+    stream : text stream, optional
+        Where to draw (default: ``sys.stderr``).
+    quiet : bool
+        Never draw.
+    delay : float
+        Seconds before anything is drawn.
+    interval : float
+        Seconds between redraws.
+    clock : callable
+        Monotonic time in seconds (replaceable in tests).
+
+    Examples
+    --------
+    >>> with ProgressLine() as progress:
+    ...     progress("drawing figures", 3, 12)
+    """
+
+    def __init__(
+        self,
+        stream: TextIO | None = None,
+        *,
+        quiet: bool = False,
+        delay: float = 2.0,
+        interval: float = 0.25,
+        clock: Callable[[], float] = time.monotonic,
+    ) -> None:
+        self._stream = stream if stream is not None else sys.stderr
+        isatty = getattr(self._stream, "isatty", None)
+        self.enabled = not quiet and callable(isatty) and bool(isatty())
+        self._delay = delay
+        self._interval = interval
+        self._clock = clock
+        self._start = clock()
+        self._stage, self._done, self._total = "", 0, 0
+        self._drawn = False
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def __call__(self, stage: str, done: int = 0, total: int = 0) -> None:
+        """Record the current step and redraw when due."""
+        with self._lock:
+            self._stage, self._done, self._total = stage, done, total
+        self._draw()
+
+    def _draw(self) -> None:
+        if not self.enabled:
+            return
+        with self._lock:
+            elapsed = self._clock() - self._start
+            if elapsed < self._delay or not self._stage:
+                return
+            count = f" {self._done}/{self._total}" if self._total else ""
+            # Carriage return and erase-line redraw the same terminal line.
+            self._stream.write(f"\r\x1b[Kabsolve: {self._stage}{count} ({elapsed:.0f} s)")
+            self._stream.flush()
+            self._drawn = True
+
+    def _tick(self) -> None:
+        while not self._stop.wait(self._interval):
+            self._draw()
+
+    def __enter__(self) -> ProgressLine:
+        self._start = self._clock()
+        if self.enabled:
+            self._thread = threading.Thread(target=self._tick, name="absolve-progress", daemon=True)
+            self._thread.start()
+        return self
+
+    def __exit__(self, kind: type[BaseException] | None, error: BaseException | None, trace: TracebackType | None) -> None:
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join()
+        with self._lock:
+            if self._drawn:
+                self._stream.write("\r\x1b[K")
+                self._stream.flush()

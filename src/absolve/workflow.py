@@ -9,9 +9,10 @@ file atomically) only when everything has succeeded.
 from __future__ import annotations
 
 import json
+from collections.abc import Callable
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, get_args
 
 from .errors import AbsolveError
 from .io.files import check_writable, write_all
@@ -20,11 +21,20 @@ from .inverse import InversePrediction
 from .io.results import fit_csv, prediction_fit_csv, prediction_results_csv, results_csv, results_json, spectra_csv
 from .io.tables import read_scans
 from .quantify import MixtureResult, quantify
+from .report.figures import FigureFormat, render_figures
 from .report.html import build_report
 
-__all__ = ["QuantifyRequest", "QuantifyOutcome", "run_quantify", "RESULT_FILES"]
+__all__ = ["FIGURE_FOLDER", "Progress", "QuantifyRequest", "QuantifyOutcome", "run_quantify", "RESULT_FILES"]
 
 RESULT_FILES = ("results.csv", "fit.csv", "fitted.csv", "residuals.csv", "results.json", "report.html")
+FIGURE_FOLDER = "figures"
+
+Progress = Callable[[str, int, int], None]
+"""Told ``(stage, done, total)`` as a run goes on (``total`` 0 when a step cannot count)."""
+
+
+def _silent(stage: str, done: int, total: int) -> None:
+    """The progress callback that shows nothing."""
 
 
 @dataclass
@@ -46,6 +56,8 @@ class QuantifyRequest:
     decimal: str = "."
     blank: Path | None = None
     force: bool = False
+    figures: str | None = None
+    detail: int = 12
     extra_sections: list[tuple[str, str]] = field(default_factory=list)
 
 
@@ -69,26 +81,45 @@ def _options(request: QuantifyRequest) -> dict[str, Any]:
         "dilution_tolerance": request.dilution_tolerance,
         "ceiling": request.ceiling,
         "quantity": request.quantity,
+        "detail": request.detail,
+        "figures": request.figures,
     }
 
 
-def run_quantify(request: QuantifyRequest) -> QuantifyOutcome:
-    """Read scans and a library, quantify, write the result files, and return the summary texts."""
+def _check_report_options(request: QuantifyRequest) -> FigureFormat | None:
+    choices = get_args(FigureFormat)
+    if request.figures is not None and request.figures not in choices:
+        raise AbsolveError(f"--figures must be one of {', '.join(choices)}; got {request.figures!r}", fix="e.g. --figures svg")
+    if request.figures is not None and request.model is not None:
+        raise AbsolveError("--figures needs --library: a PLS model's report has no spectra figures", fix="leave out --figures")
+    if request.detail < 0:
+        raise AbsolveError(f"--detail must be 0 or more; got {request.detail}", fix="e.g. --detail 12")
+    return request.figures  # type: ignore[return-value]
+
+
+def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> QuantifyOutcome:
+    """Read scans and a library, quantify, write the result files, and return the summary texts.
+
+    ``progress`` hears of each step (reading, fitting, drawing figures, writing).
+    """
     from .cli._common import provenance
 
     targets = [request.out / name for name in RESULT_FILES]
     if request.out.exists() and not request.out.is_dir():
         raise AbsolveError(f"{request.out} is a file, not a folder", fix="give --out a folder name")
+    file_format = _check_report_options(request)
     check_writable(targets, force=request.force)
     if request.model is not None:
         return _run_model(request, targets)
     assert request.library is not None
+    progress("reading", 0, 0)
     library = read_library(request.library)
     spectra = read_scans(request.scans, decimal=request.decimal, quantity=request.quantity)  # type: ignore[arg-type]
     inputs: list[Path] = [*request.scans, request.library]
     if request.blank is not None:
         spectra = spectra.subtract_blank(read_scans([request.blank], decimal=request.decimal, quantity=request.quantity))  # type: ignore[arg-type]
         inputs.append(request.blank)
+    progress(f"fitting {spectra.values.shape[0]} scans", 0, 0)
     result = quantify(
         spectra,
         library,
@@ -101,16 +132,23 @@ def run_quantify(request: QuantifyRequest) -> QuantifyOutcome:
         dilution_tolerance=request.dilution_tolerance,
     )
     record = provenance(inputs, _options(request))
-    files = {
+    figures = render_figures(
+        result, library, detail=request.detail, file_format=file_format, progress=lambda done, total: progress("drawing figures", done, total)
+    )
+    progress("writing files", 0, 0)
+    files: dict[Path, str | bytes] = {
         targets[0]: results_csv(result),
         targets[1]: fit_csv(result),
         targets[2]: spectra_csv(result, "fitted"),
         targets[3]: spectra_csv(result, "residuals"),
         targets[4]: results_json(result, record),
-        targets[5]: build_report(result, library, record, sections=request.extra_sections),
+        targets[5]: build_report(result, library, record, figures=figures, sections=request.extra_sections),
     }
+    folder = request.out / FIGURE_FOLDER
+    files.update({folder / f"{figure.key}.{file_format}": figure.file for figure in figures if figure.file is not None})
     write_all(files, force=request.force)
-    text = result.report() + f"\nresults written to {request.out}/ ({', '.join(RESULT_FILES)})"
+    saved = f" and {len(figures)} figures in {folder}/" if file_format is not None else ""
+    text = result.report() + f"\nresults written to {request.out}/ ({', '.join(RESULT_FILES)}){saved}"
     return QuantifyOutcome(result, text, json.dumps(result.summary(), indent=1, allow_nan=False), tuple(files))
 
 

@@ -8,6 +8,7 @@ from typing import Annotated, Optional
 import typer
 
 from ..errors import AbsolveError
+from ..render import ProgressLine
 from ..workflow import QuantifyRequest, run_quantify
 from ._app import app
 from ._common import parse_range
@@ -29,8 +30,10 @@ def quantify(
     quantity: Annotated[Optional[str], typer.Option("--quantity", help="absorbance, transmittance or percent-transmittance.")] = None,
     decimal: Annotated[str, typer.Option("--decimal", help="Decimal mark of the scan tables ('.' or ',').")] = ".",
     blank: Annotated[Optional[Path], typer.Option("--blank", help="Blank scan(s) to subtract first.")] = None,
+    figures: Annotated[Optional[str], typer.Option("--figures", help="Also save the report's figures as png or svg files in OUT/figures/.")] = None,
+    detail: Annotated[int, typer.Option("--detail", help="Draw the first N scans in detail (and up to N flagged ones).")] = 12,
     force: Annotated[bool, typer.Option("--force", help="Replace existing result files.")] = False,
-    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")] = False,
+    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors (no progress line either).")] = False,
     as_json: Annotated[bool, typer.Option("--json", help="Print the results as JSON instead of a table.")] = False,
 ) -> None:
     """Quantify each component in every scan, with uncertainties, diagnostics and a report."""
@@ -40,8 +43,10 @@ def quantify(
         scans=list(scans), out=out, library=library, model=model, baseline=baseline,
         wavelength_range=parse_range(wavelength_range), path_length=path_length, dilution=dilution,
         path_length_tolerance=path_tolerance, dilution_tolerance=dilution_tolerance, ceiling=ceiling,
-        quantity=quantity, decimal=decimal, blank=blank, force=force,
+        quantity=quantity, decimal=decimal, blank=blank, force=force, figures=figures, detail=detail,
     )
-    outcome = run_quantify(request)
+    # Progress goes to stderr and only to a terminal, so --json output on stdout stays pure JSON.
+    with ProgressLine(quiet=quiet) as progress:
+        outcome = run_quantify(request, progress)
     if not quiet:
         typer.echo(outcome.json_text if as_json else outcome.text)
