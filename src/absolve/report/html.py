@@ -61,6 +61,7 @@ body{max-width:none;margin:0;padding:0;font-size:10pt}
 nav{display:none}
 h2,h3{break-after:avoid;page-break-after:avoid}
 tr,figure,.attention{break-inside:avoid;page-break-inside:avoid}
+figure svg{max-width:16cm}
 thead{display:table-header-group}
 .scroll{overflow:visible}
 a{color:inherit;text-decoration:none}
