@@ -14,9 +14,10 @@ batch of scans never forms an n x n matrix.
 from __future__ import annotations
 
 import numpy as np
+import scipy.linalg
 from numpy.typing import NDArray
 
-__all__ = ["ar1_coefficients", "whiten", "correlated_norm_squared", "effective_points"]
+__all__ = ["ar1_coefficients", "whiten", "correlated_norm_squared", "correlated_squared_norms", "effective_points"]
 
 
 def ar1_coefficients(wavelengths: NDArray[np.float64], correlation_length_nm: float) -> NDArray[np.float64]:
@@ -46,15 +47,35 @@ def correlated_norm_squared(rows: NDArray[np.float64], phi: NDArray[np.float64])
     with ``R`` the AR(1) correlation matrix of ``phi``. Computed as
     ``(rows C)(rows C)^T`` where ``rows C`` is a backward recursion.
     """
+    transformed = _cholesky_product(rows, phi)
+    return np.einsum("...it,...jt->...ij", transformed, transformed)
+
+
+def correlated_squared_norms(rows: NDArray[np.float64], phi: NDArray[np.float64]) -> NDArray[np.float64]:
+    """``v R v^T`` for every row: the diagonal of :func:`correlated_norm_squared`, shape (..., m)."""
+    transformed = _cholesky_product(rows, phi)
+    return np.einsum("...t,...t->...", transformed, transformed)
+
+
+def _cholesky_product(rows: NDArray[np.float64], phi: NDArray[np.float64]) -> NDArray[np.float64]:
+    """``rows C`` with ``R = C C^T``, same shape as ``rows``.
+
+    The backward recursion ``a_t = v_t + phi_{t+1} a_{t+1}`` is the solution
+    of a unit upper-bidiagonal system; LAPACK solves it for all rows at once
+    (the same operations in the same order as the recursion, without a
+    Python step per wavelength).
+    """
     n = rows.shape[-1]
-    accumulated = np.empty_like(rows)
-    accumulated[..., n - 1] = rows[..., n - 1]
-    for t in range(n - 2, -1, -1):
-        accumulated[..., t] = rows[..., t] + phi[t + 1] * accumulated[..., t + 1]
+    flat = np.reshape(rows, (-1, n))
+    if flat.shape[0] == 0:
+        return np.zeros(rows.shape)
+    bands = np.ones((2, n))
+    bands[0, 0] = 0.0
+    bands[0, 1:] = -phi[1:]
+    accumulated = scipy.linalg.solve_banded((0, 1), bands, flat.T, check_finite=False).T
     factor = np.ones(n)
     factor[1:] = np.sqrt(1.0 - phi[1:] ** 2)
-    transformed = accumulated * factor
-    return np.einsum("...it,...jt->...ij", transformed, transformed)
+    return np.reshape(accumulated * factor, rows.shape)
 
 
 def effective_points(phi: NDArray[np.float64]) -> float:
