@@ -12,6 +12,11 @@ from os import PathLike
 
 __all__ = ["AbsolveError"]
 
+# A problem text longer than this (a pasted 100 kB cell or header) is cut in the
+# middle, so that the message stays one readable line; the full text stays in
+# ``AbsolveError.problem``.
+_MAX_PROBLEM = 300
+
 
 class AbsolveError(Exception):
     """A user-facing error that names where the problem is and how to fix it.
@@ -60,10 +65,14 @@ class AbsolveError(Exception):
                 if self.column is not None:
                     where += f":{self.column}"
             where += ": "
-        text = where + self.problem
+        problem = self.problem
+        if len(problem) > _MAX_PROBLEM:
+            problem = problem[: _MAX_PROBLEM - 80] + " [...] " + problem[-60:]
+        text = where + problem
         if self.fix:
             text += " — " + self.fix
-        return " ".join(text.split("\n"))
+        # Every character str.splitlines breaks at (\r, form feed, U+2028, a Latin-1 NEL...) becomes a space.
+        return " ".join(text.splitlines())
 
     def located(self, file: str | PathLike[str], line: int | None = None) -> AbsolveError:
         """Return a copy that names ``file`` (and ``line``) when none was known."""

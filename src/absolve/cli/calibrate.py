@@ -70,10 +70,14 @@ def _from_standards(scans, standards, unit, blank, low, high, quantity, decimal,
     conc, components = concentration_matrix(table, spectra.names)
     dilution = per_scan_value(table, spectra.names, "dilution")
     paths = per_scan_value(table, spectra.names, "path_length_cm")
-    return fit_library(
-        spectra, conc / dilution[:, None], components, unit,
-        path_lengths=paths, molar_masses=masses, linearity_tolerance=tolerance, provenance=provenance(inputs, options),
-    )
+    try:
+        return fit_library(
+            spectra, conc / dilution[:, None], components, unit,
+            path_lengths=paths, molar_masses=masses, linearity_tolerance=tolerance, provenance=provenance(inputs, options),
+        )
+    except AbsolveError as error:
+        # What the standards cannot support (a single level, proportional mixtures) is fixed in the table.
+        raise error.located(standards) from None
 
 
 def _parse_masses(items: list[str]) -> dict[str, float]:

@@ -1,4 +1,4 @@
-"""Writing result files whole or not at all, and never over results without permission."""
+"""Writing result files whole or not at all, never over results without permission; refusing pickles."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ from pathlib import Path
 
 from ..errors import AbsolveError
 
-__all__ = ["atomic_write", "check_writable", "file_sha256", "write_all"]
+__all__ = ["atomic_write", "check_writable", "file_sha256", "refuse_pickle", "write_all"]
 
 
 def file_sha256(path: str | os.PathLike[str]) -> str:
@@ -20,6 +20,20 @@ def file_sha256(path: str | os.PathLike[str]) -> str:
         for block in iter(lambda: handle.read(1 << 20), b""):
             digest.update(block)
     return digest.hexdigest()
+
+
+def refuse_pickle(path: str | os.PathLike[str], fix: str) -> None:
+    """Refuse a Python pickle (protocol 2 or later) by its first two bytes, without loading it.
+
+    A missing or unreadable file passes; the reader that follows names that problem.
+    """
+    try:
+        with open(path, "rb") as handle:
+            head = handle.read(2)
+    except OSError:
+        return
+    if len(head) == 2 and head[0] == 0x80 and 2 <= head[1] <= 5:
+        raise AbsolveError("this is a Python pickle, which absolve never loads (loading one can run any code)", fix=fix, file=path)
 
 
 def check_writable(paths: list[Path], *, force: bool) -> None:

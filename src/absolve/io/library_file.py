@@ -23,7 +23,7 @@ import numpy as np
 
 from ..errors import AbsolveError
 from ..library import ComponentCalibration, NoiseModel, ReferenceLibrary
-from .files import atomic_write
+from .files import atomic_write, refuse_pickle
 from .tables import read_text
 
 __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "library_to_json", "read_library", "write_library"]
@@ -146,6 +146,7 @@ class _Reader:
 def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
     """Read and validate a library file written by :func:`write_library`."""
     file = Path(path)
+    refuse_pickle(file, fix="pass a library JSON file written by 'absolve calibrate'")
     text = read_text(file, expected="a library file", fix="pass a library JSON file written by 'absolve calibrate'")
     try:
         document = json.loads(text)

@@ -43,7 +43,7 @@ from .. import __version__
 from ..errors import AbsolveError
 from ..inverse import ComponentModel, CrossValidation, InverseModel, SpectralCheck
 from ..units import check_unit
-from .files import atomic_write, file_sha256
+from .files import atomic_write, file_sha256, refuse_pickle
 from .tables import read_text
 
 __all__ = ["FORMAT", "VERSION", "model_to_json", "read_model", "write_model"]
@@ -207,6 +207,7 @@ def read_model(path: str | os.PathLike[str]) -> InverseModel:
         non-finite number; the message names the file and the key.
     """
     file = str(path)
+    refuse_pickle(path, fix="pass a model JSON file written by 'absolve train'")
     text = read_text(Path(path), expected="a model file", fix="pass a model JSON file written by 'absolve train'")
     try:
         document = json.loads(text)
