@@ -14,9 +14,10 @@ Experimental Designs, with SAS*, Oxford University Press 2007, ch. 10-11):
     Minimise ``max_j sqrt([(K_S^T K_S)^-1]_jj) / c_j``: the largest relative
     standard uncertainty of a component at its expected concentration ``c_j``,
     per unit of absorbance noise. It is a minimax criterion on the diagonal of
-    the covariance, i.e. E-/A-optimality's sibling on the scaled parameters
-    ``c_j``: with ``X = K diag(c)`` it is ``max_j [(X^T X)^-1]_jj``, which
-    A-optimality sums and this criterion maximises over ``j``.
+    the covariance of the scaled parameters: with ``X = K diag(c)`` it is
+    ``max_j [(X^T X)^-1]_jj``, which lies between the A-criterion's mean of the
+    diagonal (``tr((X^T X)^-1) / m``) and the E-criterion's largest eigenvalue
+    of ``(X^T X)^-1``, which bounds every diagonal element.
 ``"condition"``
     Minimise the 2-norm condition number of ``K_S`` with its columns scaled
     to unit length (the scaled condition number of Belsley, Kuh & Welsch,
@@ -33,46 +34,48 @@ may be required to lie at least some distance apart.
 Search
 ------
 For ``K <= 4`` the planner returns a proven optimum by branch and bound over
-index sets taken in a fixed order (candidates sorted by leverage in the full
-scan, so that late candidates are poor and prune well). A partial set ``P``
-whose completions are drawn from the remaining candidates ``R`` is discarded
-when a lower bound on the criterion of every completion exceeds the best plan
-found so far (the start is a greedy plus exchange plan, so the bound bites
-from the first node). The bounds are exact inequalities, valid for any choice
-of the vectors they use:
+index sets taken in a fixed order (candidates sorted by falling leverage in
+the full scan, so that the candidates left to complete a late partial set
+are poor). It starts from a greedy plus exchange plan (the incumbent) and
+discards a partial set, or a complete one before computing its criterion,
+when it fails a *screen*: linear inequalities on the Gram matrix ``M = X_S^T
+X_S`` that every set beating the incumbent must satisfy. ``M`` is a sum over
+the set's rows, so a test on a complete set costs two additions and a
+comparison, and a partial set is tested against the largest sum that ``r``
+later candidates can add. The inequalities are exact for any vectors used
+and are tight near the incumbent, whose vectors they use:
 
-* worst-relative: for any vector ``u`` and component ``j``,
-  ``[(M_S)^-1]_jj >= u_j^2 / (u^T M_S u)`` (Cauchy-Schwarz), and for a
-  completion ``C`` of ``r`` rows ``u^T M_S u <= u^T M_P u + (sum of the r
-  largest (u . x_c)^2 over R)``. Weighting components by ``mu`` (any point of
-  the simplex) gives ``sum_j mu_j var_j <= max_j var_j`` with the same kind of
-  bound on the weighted sum, so one completion has to serve every component.
-  The vectors come from Frank-Wolfe iterations on the continuous relaxation
-  (weights in [0, 1] on the remaining candidates summing to ``r``), where the
-  bound is tightest.
-* d-optimal: for any positive definite ``Q``,
-  ``det M_S <= det Q (tr(Q^-1 M_S) / m)^m`` (arithmetic-geometric mean of the
-  eigenvalues of ``Q^-1 M_S``), and ``tr(Q^-1 M_S)`` is at most
-  ``tr(Q^-1 M_P)`` plus the ``r`` largest leverages ``x_c^T Q^-1 x_c`` in
-  ``R``; once ``M_P`` is nonsingular also ``det M_S <= det M_P prod (1 +
-  x_c^T M_P^-1 x_c)`` over the ``r`` largest (Hadamard's inequality).
-* condition: with ``D`` the column scaling, ``lambda_min(D M_S D) <= (w^T M_S w)
-  / (w^T diag(M_S) w)`` for any ``w``, a ratio of sums whose largest value over
-  completions is bounded above by Dinkelbach's iteration and a secant step;
-  since the scaled matrix has trace ``m``, ``lambda_max >= (m - lambda_min) /
-  (m - 1)`` and so ``kappa^2 >= (m - t) / ((m - 1) t)`` for ``lambda_min <= t``.
+* worst-relative: ``[M^-1]_jj >= u_j^2 / (u^T M u)`` for any ``u``
+  (Cauchy-Schwarz), so beating ``best`` needs ``u^T M u >= max_j u_j^2 / best``;
+* d-optimal: ``det M <= det Q (tr(Q^-1 M) / m)^m`` for positive definite ``Q``
+  (arithmetic-geometric mean of the eigenvalues of ``Q^-1 M``);
+* condition: the scaled matrix ``C = D M D`` has trace ``m``, so ``kappa^2 >=
+  (m - lambda_min) / ((m - 1) lambda_min)`` and beating ``best`` needs
+  ``lambda_min(C) >= m / ((m - 1) best + 1)``, while ``lambda_min(C) <= (w^T M
+  w) / (w^T diag(M) w)`` for any ``w``; by interlacing every correlation of
+  ``C`` must also stay within ``(best - 1) / (best + 1)``.
 
-The last two wavelengths of every surviving partial set are enumerated in
-full with closed-form small-matrix inverses and determinants, vectorised.
+Sets that pass get the criterion in closed form (determinants and cofactors
+of the small Gram matrices, vectorised over blocks of sets; for the
+condition criterion the eigenvalues of the correlation matrix, in closed
+form up to three components). The condition criterion is flat (many sets
+come within a fraction of a percent of the best), so little can be pruned
+and it is the slowest: about 10 s for ``K = 4`` over 300-370 candidates,
+against 1-5 s for the others. The last two wavelengths of every surviving partial
+set are enumerated from precomputed pair sums. Every step is an exact
+inequality or an exact evaluation, so the result is the optimum, up to a
+relative rounding margin of 1e-9; the tests check it against brute force.
 
 For larger ``K`` (or ``search="greedy"``) the planner runs a greedy forward
 selection followed by Fedorov-style exchange (swap one chosen wavelength for
 one unchosen while the criterion improves) and states how far from optimal
-the result can be: the same bound applied to the empty partial set is a lower
-bound on the criterion over *all* plans (for the worst-relative criterion it
-is a bound on the continuous relaxation of the problem), and ``gap_bound`` is
-the plan's criterion divided by that bound (for d-optimal: the optimum's
-determinant is at most ``gap_bound`` times the plan's).
+the result can be: ``gap_bound`` is the plan's criterion divided by a lower
+bound on the criterion of *every* plan of ``K`` wavelengths, from the
+inequalities above applied to the best ``K`` candidates per direction, with
+directions from Frank-Wolfe iterations on the continuous relaxation (weights
+in [0, 1] summing to ``K``); for d-optimal, the optimum's determinant is at
+most ``gap_bound`` times the plan's. For the condition criterion the bound is
+often the trivial ``kappa >= 1``.
 
 Window mode plans the best contiguous scan range(s) of a given width for a
 scanning instrument: every grid point in the window is used.
@@ -392,8 +395,8 @@ def _cofactor_diagonal(entry: Entry, m: int) -> tuple[NDArray[np.float64], NDArr
 def _entry_loss(entry: Entry, m: int, criterion: str, below: float = np.inf) -> NDArray[np.float64]:
     """Loss of every matrix of a batch given by an accessor (inf where singular).
 
-    For the condition criterion the exact value is computed only where cheap lower
-    bounds are below ``below``; elsewhere such a bound (above ``below``) is returned.
+    For the condition criterion, matrices whose loss cannot come below ``below`` may be
+    returned as inf (only those that can are evaluated exactly).
     """
     if criterion == "condition":
         return _condition_loss(entry, m, below)
@@ -407,55 +410,69 @@ def _entry_loss(entry: Entry, m: int, criterion: str, below: float = np.inf) -> 
 
 
 def _condition_loss(entry: Entry, m: int, below: float) -> NDArray[np.float64]:
-    """Squared condition number of the unit-diagonal matrix C = D M D, in stages.
+    """Squared condition number of the unit-diagonal matrix C = D M D (the correlations of M).
 
-    Each stage is a lower bound computed only on what the previous ones left below
-    ``below``: interlacing (kappa(C) is at least that of every 2x2 principal block,
-    (1 + |rho_ij|) / (1 - |rho_ij|)), then ``[C^-1]_jj = [M^-1]_jj M_jj`` with
-    ``lambda_min(C) <= 1 / max_j [C^-1]_jj`` and ``lambda_max >= (m - lambda_min) / (m - 1)``
-    (tr C = m), and last the eigenvalues themselves.
+    Matrices that cannot come below ``below`` may be returned as inf: they are found by
+    interlacing (kappa(C)^2 is at least ``(1 + |r|) / (1 - |r|)`` for every correlation
+    ``r`` of C, a 2x2 principal block), tested without square roots. The rest get exact
+    values: closed form for m = 2 (eigenvalues ``1 +- |r|``) and m = 3 (``lambda = 1 + mu``
+    with ``mu^3 - p mu - 2 q = 0``, ``p`` the sum of squared correlations and ``q`` their
+    product, solved by the trigonometric formula for three real roots); for m >= 4 a
+    variance-inflation bound first (``lambda_min(C) <= 1 / max_j [C^-1]_jj`` with
+    ``[C^-1]_jj = [M^-1]_jj M_jj``, and ``lambda_max >= (m - lambda_min) / (m - 1)`` as
+    tr C = m), then the eigenvalues.
     """
     diagonal = [np.asarray(entry(j, j), dtype=np.float64) for j in range(m)]
     shape = diagonal[0].shape
     positive = np.all([d > 0 for d in diagonal], axis=0)
     if m == 1:
         return np.where(positive, 1.0, np.inf)
-    bound = np.where(positive, 1.0, np.inf)
-    for i in range(m):
-        for j in range(i + 1, m):
-            product = np.where(positive, diagonal[i] * diagonal[j], 1.0)
-            rho = np.minimum(np.abs(entry(i, j)) / np.sqrt(product), 1.0)
-            with np.errstate(divide="ignore"):
-                bound = np.maximum(bound, (1.0 + rho) / (1.0 - rho))
-    # The 2x2 block of a two-component design is the whole matrix: the bound is the value.
-    if m == 2:
-        return np.where(bound < 1.0 / _SINGULAR, bound, np.inf)
-    flat = bound.reshape(-1)
-    live = np.flatnonzero(flat < below * (1.0 + _PRUNE_MARGIN))
+    out = np.full(shape, np.inf).reshape(-1)
+    live = positive.reshape(-1)
+    if math.isfinite(below):
+        limit = below * (1.0 + _PRUNE_MARGIN)
+        largest_r2 = ((limit - 1.0) / (limit + 1.0)) ** 2 if limit > 1.0 else 0.0
+        for i in range(m):
+            for j in range(i + 1, m):
+                live = live & (np.reshape(entry(i, j), -1) ** 2 <= largest_r2 * (diagonal[i] * diagonal[j]).reshape(-1))
+    live = np.flatnonzero(live)
     if live.size == 0:
-        return flat.reshape(shape)
-    cache: dict[tuple[int, int], NDArray[np.float64]] = {}
+        return out.reshape(shape)
+    d = [np.sqrt(value.reshape(-1)[live]) for value in diagonal]
+    rho = {
+        (i, j): np.clip(np.broadcast_to(entry(i, j), shape).reshape(-1)[live] / (d[i] * d[j]), -1.0, 1.0)
+        for i in range(m)
+        for j in range(i + 1, m)
+    }
+    if m == 2:
+        r = np.abs(rho[0, 1])
+        usable = 1.0 - r * r > _SINGULAR
+        out[live] = np.where(usable, (1.0 + r) / np.where(usable, 1.0 - r, 1.0), np.inf)
+    elif m == 3:
+        p = rho[0, 1] ** 2 + rho[0, 2] ** 2 + rho[1, 2] ** 2
+        q = rho[0, 1] * rho[0, 2] * rho[1, 2]
+        radius = np.sqrt(p / 3.0)
+        cosine = np.where(p > 0, q / np.where(p > 0, radius, 1.0) ** 3, 0.0)
+        angle = np.arccos(np.clip(cosine, -1.0, 1.0)) / 3.0
+        largest = 1.0 + 2.0 * radius * np.cos(angle)
+        smallest = 1.0 + 2.0 * radius * np.cos(angle + 2.0 * np.pi / 3.0)
+        usable = (1.0 + 2.0 * q - p > _SINGULAR) & (smallest > 0)
+        out[live] = np.where(usable, largest / np.where(usable, smallest, 1.0), np.inf)
+    else:
 
-    def sub(i: int, j: int) -> NDArray[np.float64]:
-        if (i, j) not in cache:
-            cache[i, j] = np.broadcast_to(entry(i, j), shape).reshape(-1)[live]
-        return cache[i, j]
+        def correlation(i: int, j: int) -> NDArray[np.float64]:
+            return np.ones(live.size) if i == j else rho[min(i, j), max(i, j)]
 
-    det, cof = _cofactor_diagonal(sub, m)
-    diag = np.stack([sub(j, j) for j in range(m)], axis=-1)
-    scale = np.prod(diag, axis=-1)
-    ok = det > _SINGULAR * scale
-    t = 1.0 / np.where(ok, (cof * diag / np.where(ok, det, 1.0)[:, None]).max(axis=-1), 1.0)
-    flat[live] = np.where(ok, np.maximum(flat[live], (m - t) / ((m - 1) * t)), np.inf)
-    keep = flat[live] < below * (1.0 + _PRUNE_MARGIN)
-    exact, diag = live[keep], diag[keep]
-    if exact.size:
-        matrices = np.stack([np.stack([sub(min(i, j), max(i, j))[keep] for j in range(m)], axis=-1) for i in range(m)], axis=-2)
-        d = 1.0 / np.sqrt(diag)
-        eig = np.linalg.eigvalsh(matrices * d[:, :, None] * d[:, None, :])
-        with np.errstate(divide="ignore"):
-            flat[exact] = np.where(eig[:, 0] > 0, eig[:, -1] / np.maximum(eig[:, 0], 1e-300), np.inf)
-    return flat.reshape(shape)
+        det, cof = _cofactor_diagonal(correlation, m)
+        ok = det > _SINGULAR
+        t = 1.0 / np.where(ok, cof.max(axis=-1) / np.where(ok, det, 1.0), 1.0)
+        hopeful = ok & ((m - t) / ((m - 1) * t) < below * (1.0 + _PRUNE_MARGIN))
+        if np.any(hopeful):
+            matrices = np.stack([np.stack([correlation(i, j)[hopeful] for j in range(m)], axis=-1) for i in range(m)], axis=-2)
+            eig = np.linalg.eigvalsh(matrices)
+            usable = eig[:, 0] > 0
+            out[live[hopeful]] = np.where(usable, eig[:, -1] / np.where(usable, eig[:, 0], 1.0), np.inf)
+    return out.reshape(shape)
 
 
 def _gram_loss(M: NDArray[np.float64], criterion: str, *, below: float = np.inf) -> NDArray[np.float64]:
@@ -472,8 +489,12 @@ def _gap_from_losses(criterion: str, loss: float, lower: float, m: int) -> float
 
 
 # --------------------------------------------------------------------------------------------
-# Lower bounds for partial sets
+# Lower bounds over all plans (how far a greedy plan may be from the optimum)
 # --------------------------------------------------------------------------------------------
+#
+# Each bound below holds for every set S of r candidate rows, whatever vectors it is evaluated
+# with; the vectors come from Frank-Wolfe iterations on the continuous relaxation (weights in
+# [0, 1] on the candidates summing to r), where the bounds are tightest.
 
 
 def _top_sum(values: NDArray[np.float64], r: int, axis: int = -1) -> NDArray[np.float64]:
@@ -489,164 +510,98 @@ def _top_index(values: NDArray[np.float64], r: int) -> NDArray[np.intp]:
     return np.argpartition(-values, r - 1, axis=-1)[..., :r]
 
 
-@dataclass
-class _Nodes:
-    """A block of partial sets with what every bound needs.
+def _lower_bound_worst_relative(X: NDArray[np.float64], r: int, iterations: int) -> float:
+    """Lower bound on min over r-sets of max_j [(X_S^T X_S)^-1]_jj.
 
-    ``members`` (B, p) candidate positions, ``remaining`` (B, n) mask of candidates
-    a completion may use, ``gram`` (B, m, m) Gram matrix of the members.
+    For any u and j, ``[M_S^-1]_jj >= u_j^2 / (u^T M_S u)`` (Cauchy-Schwarz) and ``u^T M_S u``
+    is at most the sum of the r largest ``(u . x_c)^2``; weighting components by any ``mu`` in
+    the simplex, ``max_j var_j >= sum_j mu_j var_j >= (sum_j mu_j u_jj)^2 / (sum of the r
+    largest sum_j mu_j (u_j . x_c)^2)`` with ``u_j`` the columns of any symmetric ``U``.
     """
-
-    members: NDArray[np.intp]
-    remaining: NDArray[np.bool_]
-    gram: NDArray[np.float64]
-
-
-def _relaxed_start(nodes: _Nodes, outer_flat: NDArray[np.float64], r: int) -> NDArray[np.float64]:
-    """Gram matrix of the uniform fractional completion: members plus r/|R| of every remaining row."""
-    count = nodes.remaining.sum(axis=1)
-    m = nodes.gram.shape[-1]
-    remaining_gram = (nodes.remaining.astype(np.float64) @ outer_flat).reshape(-1, m, m)
-    return nodes.gram + (r / np.maximum(count, 1))[:, None, None] * remaining_gram
-
-
-def _member_quadratic(X: NDArray[np.float64], members: NDArray[np.intp], U: NDArray[np.float64]) -> NDArray[np.float64]:
-    """``u_k^T M_P u_k`` as sums of squares (no cancellation), for U (B, m, k) -> (B, k)."""
-    if members.shape[1] == 0:
-        return np.zeros((U.shape[0], U.shape[2]))
-    return (np.matmul(X[members], U) ** 2).sum(axis=1)
-
-
-def _bound_worst_relative(X: NDArray[np.float64], outer: NDArray[np.float64], nodes: _Nodes, r: int, iterations: int) -> NDArray[np.float64]:
-    """Lower bound on max_j [(M_P + M_C)^-1]_jj over completions C of r rows from the remaining ones."""
     n, m = X.shape
-    B = nodes.members.shape[0]
-    flat = outer.reshape(n, m * m)
-    weight = nodes.remaining.astype(np.float64)[:, :, None]
-    relaxed = _relaxed_start(nodes, flat, r)
-    ridge = 1e-12 * np.trace(relaxed, axis1=1, axis2=2)[:, None, None] * np.eye(m)
-    best = np.zeros(B)
+    outer = np.einsum("ni,nj->nij", X, X)
+    relaxed = (r / n) * outer.sum(axis=0)
+    best = 0.0
     for step in range(iterations):
-        U = np.linalg.inv(relaxed + ridge)  # column j: the direction binding component j
-        projection = np.matmul(X, U) ** 2 * weight  # (B, n, j): (u_j . x_c)^2 on remaining rows
-        quadratic = _member_quadratic(X, nodes.members, U)  # (B, j)
-        scale = np.abs(np.diagonal(U, axis1=1, axis2=2))  # u_jj
+        U = np.linalg.inv(relaxed + 1e-12 * np.trace(relaxed) * np.eye(m))
+        projection = (X @ U) ** 2  # (n, j)
+        scale = np.abs(np.diag(U))
         with np.errstate(divide="ignore", invalid="ignore"):
-            single = scale**2 / (quadratic + _top_sum(projection, r, axis=1))
-        best = np.maximum(best, np.nan_to_num(single, nan=0.0, posinf=np.inf).max(axis=1))
-        # Weighted components: sum_j mu_j var_j >= (sum_j mu_j u_jj)^2 / (sum_j mu_j (u_j^T M u_j)).
+            best = max(best, float(np.nanmax(scale**2 / _top_sum(projection, r, axis=0))))
         for power in (1.0, 4.0, 16.0):
-            mu = (scale / scale.max(axis=1, keepdims=True)) ** power
-            mu /= mu.sum(axis=1, keepdims=True)
-            mixed = np.matmul(projection, mu[:, :, None])[:, :, 0]
+            mu = (scale / scale.max()) ** power
+            mu /= mu.sum()
             with np.errstate(divide="ignore", invalid="ignore"):
-                joint = (mu * scale).sum(axis=1) ** 2 / ((mu * quadratic).sum(axis=1) + _top_sum(mixed, r))
-            best = np.maximum(best, np.nan_to_num(joint, nan=0.0, posinf=np.inf))
-        if step + 1 == iterations:
-            break
-        # Frank-Wolfe step on the relaxation: move towards the vertex that most reduces the
-        # weighted variance (the r remaining rows with the largest weighted projections).
-        mu = (scale / scale.max(axis=1, keepdims=True)) ** 8.0
-        mu /= mu.sum(axis=1, keepdims=True)
-        chosen = _top_index(np.matmul(projection, mu[:, :, None])[:, :, 0], r)
-        vertex = nodes.gram + outer[chosen].sum(axis=1)
+                joint = (mu @ scale) ** 2 / _top_sum(projection @ mu, r)
+            best = max(best, float(np.nan_to_num(joint, nan=0.0)))
+        # Frank-Wolfe step towards the r rows that most reduce the weighted variance.
+        mu = (scale / scale.max()) ** 8.0
+        vertex = outer[_top_index(projection @ (mu / mu.sum()), r)].sum(axis=0)
         gamma = 2.0 / (step + 3.0)
         relaxed = (1.0 - gamma) * relaxed + gamma * vertex
     return best
 
 
-def _bound_d_optimal(X: NDArray[np.float64], outer: NDArray[np.float64], nodes: _Nodes, r: int, iterations: int) -> NDArray[np.float64]:
-    """Lower bound on det(M_P + M_C)^(-1/m) over completions C of r rows from the remaining ones."""
-    n, m = X.shape
-    flat = outer.reshape(n, m * m)
-    weight = nodes.remaining.astype(np.float64)
-    relaxed = _relaxed_start(nodes, flat, r)
-    ridge = 1e-12 * np.trace(relaxed, axis1=1, axis2=2)[:, None, None] * np.eye(m)
-    best_log = np.full(nodes.members.shape[0], np.inf)  # upper bound on log det
-    for step in range(iterations):
-        Q = relaxed + ridge
-        sign, logdet = np.linalg.slogdet(Q)
-        Qinv = np.linalg.inv(Q)
-        leverage = np.einsum("nk,bkl,nl->bn", X, Qinv, X) * weight
-        member = np.einsum("bkl,blk->b", Qinv, nodes.gram)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            bound = logdet + m * np.log((member + _top_sum(leverage, r)) / m)
-        best_log = np.minimum(best_log, np.where(sign > 0, bound, np.inf))
-        if step + 1 == iterations:
-            break
-        vertex = nodes.gram + outer[_top_index(leverage, r)].sum(axis=1)
-        gamma = 2.0 / (step + 3.0)
-        relaxed = (1.0 - gamma) * relaxed + gamma * vertex
-    # Hadamard: det(M_P + X_C^T X_C) <= det(M_P) prod(1 + x_c^T M_P^-1 x_c) when M_P is nonsingular.
-    if nodes.members.shape[1] >= m:
-        sign, logdet = np.linalg.slogdet(nodes.gram)
-        usable = sign > 0
-        if np.any(usable):
-            Pinv = np.linalg.inv(np.where(usable[:, None, None], nodes.gram, np.eye(m)))
-            leverage = np.einsum("nk,bkl,nl->bn", X, Pinv, X) * weight
-            hadamard = logdet + _top_sum(np.log1p(np.maximum(leverage, 0.0)), r)
-            best_log = np.where(usable, np.minimum(best_log, hadamard), best_log)
-    with np.errstate(over="ignore"):
-        return np.exp(-best_log / m)
+def _lower_bound_d_optimal(X: NDArray[np.float64], r: int, iterations: int) -> float:
+    """Lower bound on min over r-sets of det(X_S^T X_S)^(-1/m).
 
-
-def _ratio_upper_bound(
-    a_members: NDArray[np.float64], b_members: NDArray[np.float64], a: NDArray[np.float64], b: NDArray[np.float64],
-    weight: NDArray[np.float64], r: int,
-) -> NDArray[np.float64]:
-    """Upper bound on max over r-subsets C of the remaining rows of (a_P + sum_C a) / (b_P + sum_C b).
-
-    F(t) = a_P - t b_P + (sum of the r largest a_c - t b_c) is convex and decreasing and its root
-    is the maximum. Dinkelbach's iteration climbs to the root from below; every affine piece of F
-    falls at least as fast as -(b_P + sum of the r smallest b_c), which bounds the root from above.
+    For any positive definite Q, ``det M_S <= det Q (tr(Q^-1 M_S) / m)^m`` (arithmetic-geometric
+    mean of the eigenvalues of Q^-1 M_S) and ``tr(Q^-1 M_S)`` is at most the sum of the r largest
+    leverages ``x_c^T Q^-1 x_c``.
     """
-    masked_a = np.where(weight > 0, a, -np.inf)
-    t = np.zeros(a_members.shape)
-    for _ in range(4):
-        gain = masked_a - t[:, None] * b
-        chosen = _top_index(gain, r)
-        num = a_members + np.take_along_axis(a, chosen, axis=1).sum(axis=1)
-        den = b_members + np.take_along_axis(b, chosen, axis=1).sum(axis=1)
-        with np.errstate(divide="ignore", invalid="ignore"):
-            t = np.where(den > 0, num / den, 1.0)
-    gain = masked_a - t[:, None] * b
-    value = a_members - t * b_members + _top_sum(gain, r)
-    slowest = b_members + _top_sum(np.where(weight > 0, -b, -np.inf), r) * -1.0
-    with np.errstate(divide="ignore", invalid="ignore"):
-        upper = np.where(slowest > 0, t + np.maximum(value, 0.0) / slowest, 1.0)
-    return np.clip(upper, 0.0, 1.0)
-
-
-def _bound_condition(X: NDArray[np.float64], outer: NDArray[np.float64], nodes: _Nodes, r: int, iterations: int) -> NDArray[np.float64]:
-    """Lower bound on the squared scaled condition number over completions of r remaining rows."""
     n, m = X.shape
-    flat = outer.reshape(n, m * m)
-    weight = nodes.remaining.astype(np.float64)
-    relaxed = _relaxed_start(nodes, flat, r)
-    t_best = np.ones(nodes.members.shape[0])
-    for _ in range(iterations):
-        diagonal = np.maximum(np.diagonal(relaxed, axis1=1, axis2=2), 1e-300)
-        d = 1.0 / np.sqrt(diagonal)
-        _, vectors = np.linalg.eigh(relaxed * d[:, :, None] * d[:, None, :])
-        w = vectors[:, :, 0] * d  # the weakest combination of scaled columns
-        a = (X @ w.T).T ** 2  # (B, n)
-        b = (X**2) @ (w**2).T  # (n, B)
-        b = b.T
-        rows = X[nodes.members]
-        a_members = ((rows @ w[:, :, None])[..., 0] ** 2).sum(axis=1) if nodes.members.shape[1] else np.zeros(len(w))
-        b_members = ((rows**2) @ (w**2)[:, :, None])[..., 0].sum(axis=1) if nodes.members.shape[1] else np.zeros(len(w))
-        upper = _ratio_upper_bound(a_members, b_members, a, b, weight, r)
-        t_best = np.minimum(t_best, upper)
-        # Next direction from the completion that spoils this one most.
-        chosen = _top_index(np.where(weight > 0, a - upper[:, None] * b, -np.inf), r)
-        relaxed = 0.5 * relaxed + 0.5 * (nodes.gram + outer[chosen].sum(axis=1))
-    t_best = np.maximum(t_best, 1e-300)
+    outer = np.einsum("ni,nj->nij", X, X)
+    relaxed = (r / n) * outer.sum(axis=0)
+    lowest = math.inf  # upper bound on log det
+    for step in range(iterations):
+        sign, log_det = np.linalg.slogdet(relaxed)
+        if sign <= 0:
+            break
+        leverage = np.einsum("nk,kl,nl->n", X, np.linalg.inv(relaxed), X)
+        lowest = min(lowest, float(log_det + m * np.log(_top_sum(leverage, r) / m)))
+        gamma = 2.0 / (step + 3.0)
+        relaxed = (1.0 - gamma) * relaxed + gamma * outer[_top_index(leverage, r)].sum(axis=0)
+    return math.exp(-lowest / m) if math.isfinite(lowest) else 0.0
+
+
+def _lower_bound_condition(X: NDArray[np.float64], r: int, iterations: int) -> float:
+    """Lower bound on min over r-sets of the squared scaled condition number.
+
+    For any w, ``lambda_min(D M_S D) <= (w^T M_S w) / (w^T diag(M_S) w)``, a ratio of sums over
+    the set whose largest value over r-sets is the root of the convex decreasing
+    ``F(t) = (sum of the r largest a_c - t b_c)``; Dinkelbach's iteration climbs to it from
+    below and, every piece of F falling at least as fast as the r smallest ``b_c`` sum, a
+    secant step bounds it from above. With ``lambda_min <= t`` and trace m,
+    ``kappa^2 >= (m - t) / ((m - 1) t)``.
+    """
+    n, m = X.shape
     if m == 1:
-        return np.ones_like(t_best)
-    return (m - t_best) / ((m - 1) * t_best)
+        return 1.0
+    outer = np.einsum("ni,nj->nij", X, X)
+    relaxed = (r / n) * outer.sum(axis=0)
+    smallest = 1.0
+    for _ in range(iterations):
+        d = 1.0 / np.sqrt(np.maximum(np.diag(relaxed), 1e-300))
+        w = np.linalg.eigh(relaxed * d[:, None] * d[None, :])[1][:, 0] * d  # weakest scaled direction
+        a, b = (X @ w) ** 2, (X**2) @ (w**2)
+        t = 0.0
+        for _ in range(4):
+            chosen = _top_index(a - t * b, r)
+            if not b[chosen].sum() > 0:
+                break
+            t = float(a[chosen].sum() / b[chosen].sum())
+        slowest = float(-_top_sum(-b, r))
+        upper = t + max(float(_top_sum(a - t * b, r)), 0.0) / slowest if slowest > 0 else 1.0
+        smallest = min(smallest, max(upper, 1e-300))
+        relaxed = 0.5 * relaxed + 0.5 * outer[_top_index(a - upper * b, r)].sum(axis=0)
+    return (m - smallest) / ((m - 1) * smallest)
 
 
-_BOUNDS = {"worst-relative": _bound_worst_relative, "d-optimal": _bound_d_optimal, "condition": _bound_condition}
+_LOWER_BOUNDS = {
+    "worst-relative": _lower_bound_worst_relative,
+    "d-optimal": _lower_bound_d_optimal,
+    "condition": _lower_bound_condition,
+}
 
 
 # --------------------------------------------------------------------------------------------
@@ -796,7 +751,6 @@ class _BranchAndBound:
         self.conflict = None if conflict is None else conflict[np.ix_(self.order, self.order)]
         self.count = count
         self.criterion = criterion
-        self.outer = np.einsum("ni,nj->nij", self.X, self.X)
         self.best_set = self.position[np.asarray(incumbent)]
         self.best_loss = float(incumbent_loss)
         self.evaluated = 0
@@ -806,25 +760,26 @@ class _BranchAndBound:
             first, second = first[keep], second[keep]
         # Completion pairs in lexicographic order: those after position l are a suffix.
         self.pair_first, self.pair_second = first, second
-        self.pair_gram = pair_gram = self.outer[first] + self.outer[second]
         self.pair_offset = np.searchsorted(first, np.arange(n + 1))
-        # Upper-triangle entries of the pair Gram matrices, one contiguous row per entry.
+        # Gram matrices by their upper-triangle entries, one contiguous row per entry.
         self.tri_rows, self.tri_cols = np.triu_indices(m)
         self.tri_lookup = np.zeros((m, m), dtype=np.intp)
         self.tri_lookup[self.tri_rows, self.tri_cols] = np.arange(self.tri_rows.size)
         self.tri_lookup[self.tri_cols, self.tri_rows] = np.arange(self.tri_rows.size)
-        self.pair_entries = np.ascontiguousarray(pair_gram[:, self.tri_rows, self.tri_cols].T)
-        incumbent_rows = self.X[self.best_set]
-        self.screen = _Screen(incumbent_rows.T @ incumbent_rows, criterion, self.X, pair_gram)
+        self.single_entries = np.ascontiguousarray((self.X[:, self.tri_rows] * self.X[:, self.tri_cols]).T)
+        self.pair_entries = self.single_entries[:, first] + self.single_entries[:, second]
+        self.screen = self._aim(self.best_set)
 
     def run(self) -> tuple[NDArray[np.intp], float, int]:
         """Search; returns candidate indices (original order) of the optimum, its loss, sets evaluated."""
-        if self.count == 1:
-            losses = _gram_loss(self.outer, self.criterion)
-            self.evaluated += losses.size
-            self._offer(np.argmin(losses)[None], float(losses.min()))
-        else:
-            self._descend(np.zeros((1, 0), dtype=np.intp))
+        # kappa >= 1 for every matrix: an incumbent with kappa = 1 is optimal already.
+        if not (self.criterion == "condition" and self.best_loss <= 1.0 + _IMPROVEMENT):
+            if self.count == 1:
+                losses = _entry_loss(lambda i, j: self.single_entries[self.tri_lookup[i, j]], self.X.shape[1], self.criterion)
+                self.evaluated += losses.size
+                self._offer(np.argmin(losses)[None], float(losses.min()))
+            else:
+                self._descend(np.zeros((1, 0), dtype=np.intp))
         return np.sort(self.order[self.best_set]), self.best_loss, self.evaluated
 
     def _offer(self, members: NDArray[np.intp], loss: float) -> None:
@@ -832,8 +787,16 @@ class _BranchAndBound:
         if loss < self.best_loss * (1.0 - _IMPROVEMENT):
             self.best_loss = loss
             self.best_set = np.sort(members)
-            rows = self.X[self.best_set]
-            self.screen = _Screen(rows.T @ rows, self.criterion, self.X, self.pair_gram)
+            self.screen = self._aim(self.best_set)
+
+    def _entries(self, members: NDArray[np.intp]) -> NDArray[np.float64]:
+        """Upper-triangle entries of the partial sets' Gram matrices, shape (B, n_entries)."""
+        return self.single_entries[:, members].sum(axis=2).T
+
+    def _aim(self, members: NDArray[np.intp]) -> _Screen:
+        """A screen built on the Gram matrix of ``members`` (the incumbent)."""
+        rows = self.X[members]
+        return _Screen(rows.T @ rows, self.criterion, self.single_entries, self.pair_entries)
 
     def _remaining(self, members: NDArray[np.intp]) -> NDArray[np.bool_]:
         n = self.X.shape[0]
@@ -844,12 +807,14 @@ class _BranchAndBound:
         return mask
 
     def _descend(self, members: NDArray[np.intp]) -> None:
+        """Extend surviving partial sets by one later candidate, screen, recurse; enumerate the last two."""
         r = self.count - members.shape[1]
         if r == 2:
             self._leaves(members)
             return
-        for start in range(0, members.shape[0], max(1, _NODE_BLOCK // self.X.shape[0])):
-            block = members[start : start + max(1, _NODE_BLOCK // self.X.shape[0])]
+        parents = max(1, _NODE_BLOCK // self.X.shape[0])
+        for start in range(0, members.shape[0], parents):
+            block = members[start : start + parents]
             parent, child = np.nonzero(self._remaining(block))
             children = np.concatenate([block[parent], child[:, None]], axis=1)
             for first in range(0, children.shape[0], _NODE_BLOCK):
@@ -859,7 +824,7 @@ class _BranchAndBound:
 
     def _prune(self, members: NDArray[np.intp], r: int) -> NDArray[np.intp]:
         """Keep the partial sets that, completed by r later candidates, may still beat the incumbent."""
-        node_a, node_b = self.screen.values(self.outer[members].sum(axis=1))
+        node_a, node_b = self.screen.values(self._entries(members))
         members = members[self.screen.passes_nodes(node_a, node_b, members[:, -1], r, self.best_loss)]
         return members
 
@@ -872,10 +837,9 @@ class _BranchAndBound:
         p = members.shape[1]
         m = self.X.shape[1]
         last = members[:, -1] if p else np.full(members.shape[0], -1)
-        grams = self.outer[members].sum(axis=1)
-        node_entries = grams[:, self.tri_rows, self.tri_cols]  # (B, n_entries)
+        node_entries = self._entries(members)
         screen = self.screen
-        node_a, node_b = screen.values(grams)
+        node_a, node_b = screen.values(node_entries)
         blocked = self.conflict[members].any(axis=1) if (self.conflict is not None and p) else None
         total = self.pair_first.size
         for value in np.unique(last):
@@ -891,25 +855,34 @@ class _BranchAndBound:
                     s1 = min(total, s0 + cols)
                     if screen is not self.screen:  # a better incumbent re-aimed the screen
                         screen = self.screen
-                        node_a, node_b = screen.values(grams)
+                        node_a, node_b = screen.values(node_entries)
                     keep = screen.passes_leaves(
                         node_a[nodes], None if node_b is None else node_b[nodes], s0, s1, self.best_loss
                     )
                     if blocked is not None:
                         keep &= ~(blocked[nodes][:, self.pair_first[s0:s1]] | blocked[nodes][:, self.pair_second[s0:s1]])
                     self.evaluated += keep.size
-                    node_index, pair_index = np.nonzero(keep)
-                    if node_index.size == 0:
+                    passing = int(np.count_nonzero(keep))
+                    if passing == 0:
                         continue
-                    pair_index += s0
-                    entries = node_entries[nodes[node_index]].T + self.pair_entries[:, pair_index]
-                    loss = _entry_loss(lambda i, j: entries[self.tri_lookup[i, j]], m, self.criterion, self.best_loss)
-                    best = int(np.argmin(loss))
-                    if loss[best] < self.best_loss * (1.0 - _IMPROVEMENT):
-                        pair = pair_index[best]
+                    if 4 * passing > keep.size:
+                        # Most leaves pass (flat criteria): broadcast sums over the block beat gathering.
+                        block = node_entries[nodes].T[:, :, None] + self.pair_entries[:, None, s0:s1]
+                        loss = _entry_loss(lambda i, j: block[self.tri_lookup[i, j]], m, self.criterion, self.best_loss)
+                        loss[~keep] = np.inf
+                        best = int(np.argmin(loss))
+                        node, pair = divmod(best, s1 - s0)
+                        value = float(loss[node, pair])
+                    else:
+                        node_index, pair_index = np.nonzero(keep)
+                        gathered = node_entries[nodes[node_index]].T + self.pair_entries[:, pair_index + s0]
+                        loss = _entry_loss(lambda i, j: gathered[self.tri_lookup[i, j]], m, self.criterion, self.best_loss)
+                        best = int(np.argmin(loss))
+                        node, pair, value = int(node_index[best]), int(pair_index[best]), float(loss[best])
+                    if value < self.best_loss * (1.0 - _IMPROVEMENT):
+                        pair += s0
                         self._offer(
-                            np.concatenate([members[nodes[node_index[best]]], [self.pair_first[pair], self.pair_second[pair]]]),
-                            float(loss[best]),
+                            np.concatenate([members[nodes[node]], [self.pair_first[pair], self.pair_second[pair]]]), value
                         )
 
 
@@ -927,16 +900,22 @@ class _Screen:
       max_k u_k^2 / best`` for ``u`` the columns and eigenvectors of the incumbent's ``M^-1``;
     * d-optimal: ``det M <= det Q (tr(Q^-1 M) / m)^m`` with ``Q`` the incumbent's Gram matrix;
     * condition: ``lambda_min(D M D) <= w^T M w / w^T diag(M) w`` for ``w`` the incumbent's
-      scaled eigen-directions, and ``kappa^2 >= (m - lambda_min) / ((m - 1) lambda_min)``.
+      scaled eigen-directions, and ``kappa^2 >= (m - lambda_min) / ((m - 1) lambda_min)``;
+      and interlacing, ``|M_ij| <= (best - 1) / (best + 1) sqrt(M_ii M_jj)``, made linear by
+      ``sqrt(M_ii M_jj) <= (s M_ii + M_jj / s) / 2`` for a range of ``s``. These tests are used
+      on partial sets only: on complete sets the exact interlacing check is cheaper.
     """
 
-    def __init__(self, gram: NDArray[np.float64], criterion: str, X: NDArray[np.float64], pair_gram: NDArray[np.float64]) -> None:
+    def __init__(
+        self, gram: NDArray[np.float64], criterion: str, single_entries: NDArray[np.float64], pair_entries: NDArray[np.float64]
+    ) -> None:
         m = gram.shape[0]
         self.criterion = criterion
         self.m = m
         B: NDArray[np.float64] | None = None
         self.peak = np.zeros(0)
         self.log_det = 0.0
+        self.leaf_tests = 0
         if not np.isfinite(_gram_loss(gram, criterion)):
             # No usable incumbent yet (every start was singular): no tests, everything passes.
             A = np.zeros((0, m, m))
@@ -955,44 +934,66 @@ class _Screen:
             w = (vectors * d[:, None]).T  # (m, m): every scaled eigen-direction, weakest first
             A = np.einsum("ti,tj->tij", w, w)
             B = np.einsum("ti,ij->tij", w**2, np.eye(m))
-        self.A, self.B = A, B
-        self.single_a, self.single_b = self._on(np.einsum("ni,nj->nij", X, X))
-        self.pair_a, self.pair_b = self._on(pair_gram)
+            self.leaf_tests = 0  # at complete sets the exact interlacing check in _condition_loss is cheaper
+            # Interlacing, linearised for partial sets: |M_ij| <= rho0 sqrt(M_ii M_jj) <=
+            # rho0 (s M_ii + M_jj / s) / 2 for every s > 0, tightest at s = sqrt(M_jj / M_ii);
+            # s spans a factor 4 either side of the incumbent's ratio.
+            extra_a, extra_b = [], []
+            for i, j in zip(*np.triu_indices(m, 1)):
+                for sign in (1.0, -1.0):
+                    for s in np.sqrt(gram[j, j] / gram[i, i]) * 2.0 ** (np.arange(-4, 5) / 2.0):
+                        a = np.zeros((m, m))
+                        a[i, j] = a[j, i] = -sign
+                        b = np.zeros((m, m))
+                        b[i, i], b[j, j] = s, 1.0 / s
+                        extra_a.append(a)
+                        extra_b.append(b)
+            A = np.concatenate([A, np.array(extra_a).reshape(-1, m, m)])
+            B = np.concatenate([B, np.array(extra_b).reshape(-1, m, m)])
+        # <A, M> over the upper-triangle entries of symmetric M: off-diagonal entries count twice.
+        rows, cols = np.triu_indices(m)
+        twice = np.where(rows == cols, 1.0, 2.0)
+        self.weights_a = A[:, rows, cols] * twice
+        self.weights_b = None if B is None else B[:, rows, cols] * twice
+        self.single_a, self.single_b = self._on(single_entries)
+        self.pair_a, self.pair_b = self._on(pair_entries)
+        self.tests = A.shape[0]
+        if criterion != "condition":
+            self.leaf_tests = self.tests
         self._tables: dict[tuple[int, float], NDArray[np.float64]] = {}
 
-    def _on(self, grams: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64] | None]:
-        """The tests' linear parts on a batch of Gram matrices, shape (n_tests, batch) each."""
-        a = np.einsum("tij,pij->tp", self.A, grams)
-        return a, None if self.B is None else np.einsum("tij,pij->tp", self.B, grams)
+    def _on(self, entries: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64] | None]:
+        """The tests' linear parts on matrices given by upper-triangle entries (n_entries, batch) -> (n_tests, batch)."""
+        return self.weights_a @ entries, None if self.weights_b is None else self.weights_b @ entries
 
-    def values(self, grams: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64] | None]:
-        """The tests' linear parts on partial sets' Gram matrices, shape (B, n_tests) each."""
-        a, b = self._on(grams)
+    def values(self, entries: NDArray[np.float64]) -> tuple[NDArray[np.float64], NDArray[np.float64] | None]:
+        """The tests' linear parts on partial sets given by entries (B, n_entries) -> (B, n_tests) each."""
+        a, b = self._on(entries.T)
         return a.T, None if b is None else b.T
 
-    def _limits(self, best: float) -> tuple[float, NDArray[np.float64]]:
-        """``alpha`` and ``theta`` of the tests for a set to beat ``best`` (with the pruning margin)."""
+    def _limits(self, best: float) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """``alpha`` and ``theta`` of each test for a set to beat ``best`` (with the pruning margin)."""
         limit = best * (1.0 + _PRUNE_MARGIN)
-        tests = self.A.shape[0]
+        tests = self.tests
         if tests == 0 or self.criterion == "worst-relative":
-            return 0.0, self.peak / limit
+            return np.zeros(tests), self.peak / limit
         if self.criterion == "d-optimal":
-            return 0.0, np.full(tests, self.m * math.exp(-self.log_det / self.m) / limit)
-        return self.m / ((self.m - 1) * limit + 1.0), np.zeros(tests)
-
-    def _combine(self, a: NDArray[np.float64], b: NDArray[np.float64] | None, alpha: float) -> NDArray[np.float64]:
-        return a if b is None else a - alpha * b
+            return np.zeros(tests), np.full(tests, self.m * math.exp(-self.log_det / self.m) / limit)
+        # Condition: lambda_min(C) >= m / ((m - 1) best + 1), and every |r_ij| <= (best - 1) / (best + 1).
+        alpha = np.full(tests, -(limit - 1.0) / (limit + 1.0))
+        alpha[: self.m] = self.m / ((self.m - 1) * limit + 1.0)
+        return alpha, np.zeros(tests)
 
     def passes_leaves(
         self, node_a: NDArray[np.float64], node_b: NDArray[np.float64] | None, s0: int, s1: int, best: float
     ) -> NDArray[np.bool_]:
-        """Mask (B, s1 - s0) of leaves (partial set + pair s0..s1) that meet every test."""
+        """Mask (B, s1 - s0) of leaves (partial set + pair s0..s1) that meet the leaf tests."""
         alpha, theta = self._limits(best)
-        node = self._combine(node_a, node_b, alpha)
-        pair = self._combine(self.pair_a[:, s0:s1], None if self.pair_b is None else self.pair_b[:, s0:s1], alpha)
-        keep = np.ones((node.shape[0], s1 - s0), dtype=bool)
-        for t in range(theta.size):
-            keep &= node[:, t, None] + pair[t, None, :] >= theta[t]
+        keep = np.ones((node_a.shape[0], s1 - s0), dtype=bool)
+        for t in range(self.leaf_tests):
+            node = node_a[:, t] if node_b is None else node_a[:, t] - alpha[t] * node_b[:, t]
+            pair = self.pair_a[t, s0:s1] if self.pair_b is None else self.pair_a[t, s0:s1] - alpha[t] * self.pair_b[t, s0:s1]
+            keep &= node[:, None] + pair[None, :] >= theta[t]
         return keep
 
     def passes_nodes(
@@ -1000,12 +1001,11 @@ class _Screen:
     ) -> NDArray[np.bool_]:
         """Mask (B,) of partial sets that, completed by the best r later candidates per test, meet every test."""
         alpha, theta = self._limits(best)
-        key = (r, alpha)
-        if key not in self._tables:
-            self._tables[key] = _suffix_top(self._combine(self.single_a, self.single_b, alpha), r)
-        table = self._tables[key]
-        node = self._combine(node_a, node_b, alpha)
-        return np.all(node + table[:, last + 1].T >= theta[None, :], axis=1)
+        if (r, best) not in self._tables:
+            single = self.single_a if self.single_b is None else self.single_a - alpha[:, None] * self.single_b
+            self._tables = {(r, best): _suffix_top(single, r)}
+        node = node_a if node_b is None else node_a - alpha[None, :] * node_b
+        return np.all(node + self._tables[r, best][:, last + 1].T >= theta[None, :], axis=1)
 
 
 def _suffix_top(values: NDArray[np.float64], r: int) -> NDArray[np.float64]:
@@ -1017,14 +1017,6 @@ def _suffix_top(values: NDArray[np.float64], r: int) -> NDArray[np.float64]:
         top = np.sort(np.concatenate([top, values[:, start : start + 1]], axis=1), axis=1)[:, 1:]
         out[:, start] = top.sum(axis=1)
     return out
-
-
-def _root_lower_bound(X: NDArray[np.float64], count: int, criterion: str) -> float:
-    """Lower bound on the loss of every plan of ``count`` rows (the bound on the empty partial set)."""
-    n = X.shape[0]
-    nodes = _Nodes(np.zeros((1, 0), dtype=np.intp), np.ones((1, n), dtype=bool), np.zeros((1, X.shape[1], X.shape[1])))
-    outer = np.einsum("ni,nj->nij", X, X)
-    return float(_BOUNDS[criterion](X, outer, nodes, count, 200)[0])
 
 
 # --------------------------------------------------------------------------------------------
@@ -1268,7 +1260,7 @@ def plan_wavelengths(
         evaluated += more
         gap = 1.0
     else:
-        gap = _gap_from_losses(criterion, loss, _root_lower_bound(Xc, count, criterion), m)
+        gap = _gap_from_losses(criterion, loss, _LOWER_BOUNDS[criterion](Xc, count, 200), m)
     if not math.isfinite(loss):
         raise AbsolveError(
             f"no {count} candidate wavelengths tell the components apart under these constraints",
