@@ -163,7 +163,7 @@ class ProgressLine:
         self._clock = clock
         self._start = clock()
         self._stage, self._done, self._total = "", 0, 0
-        self._drawn = False
+        self._line = ""
         self._lock = threading.Lock()
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
@@ -182,10 +182,13 @@ class ProgressLine:
             if elapsed < self._delay or not self._stage:
                 return
             count = f" {self._done}/{self._total}" if self._total else ""
+            line = f"absolve: {self._stage}{count} ({elapsed:.0f} s)"
+            if line == self._line:
+                return
             # Carriage return and erase-line redraw the same terminal line.
-            self._stream.write(f"\r\x1b[Kabsolve: {self._stage}{count} ({elapsed:.0f} s)")
+            self._stream.write(f"\r\x1b[K{line}")
             self._stream.flush()
-            self._drawn = True
+            self._line = line
 
     def _tick(self) -> None:
         while not self._stop.wait(self._interval):
@@ -203,6 +206,6 @@ class ProgressLine:
         if self._thread is not None:
             self._thread.join()
         with self._lock:
-            if self._drawn:
+            if self._line:
                 self._stream.write("\r\x1b[K")
                 self._stream.flush()

@@ -135,7 +135,7 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
     figures = render_figures(
         result, library, detail=request.detail, file_format=file_format, progress=lambda done, total: progress("drawing figures", done, total)
     )
-    progress("writing files", 0, 0)
+    progress("preparing result files", 0, 0)
     files: dict[Path, str | bytes] = {
         targets[0]: results_csv(result),
         targets[1]: fit_csv(result),
@@ -146,6 +146,7 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
     }
     folder = request.out / FIGURE_FOLDER
     files.update({folder / f"{figure.key}.{file_format}": figure.file for figure in figures if figure.file is not None})
+    progress("writing files", 0, 0)
     write_all(files, force=request.force)
     saved = f" and {len(figures)} figures in {folder}/" if file_format is not None else ""
     text = result.report() + f"\nresults written to {request.out}/ ({', '.join(RESULT_FILES)}){saved}"

@@ -269,6 +269,9 @@ def test_progress_line_waits_then_redraws_in_place_and_clears() -> None:
         clock.now += 2.5
         progress("drawing figures", 3, 12)
         assert stream.getvalue().endswith("\r\x1b[Kabsolve: drawing figures 3/12 (2 s)")
+        drawn = stream.getvalue()
+        progress("drawing figures", 3, 12)
+        assert stream.getvalue() == drawn  # an unchanged line is not redrawn
     assert stream.getvalue().endswith("\r\x1b[K")
 
 
