@@ -51,7 +51,7 @@ tr.flagged td:first-child{border-left:4px solid #D55E00}
 nav ol{columns:2;font-size:.9rem;margin:.3rem 0}
 dl.facts{display:grid;grid-template-columns:max-content auto;gap:.15rem 1rem;font-size:.9rem;margin:.5rem 0}
 dl.facts dt{font-weight:600} dl.facts dd{margin:0}
-figure{margin:.8rem 0 1.4rem;break-inside:avoid;page-break-inside:avoid}
+figure{margin:.8rem 0 1.4rem;break-inside:avoid;page-break-inside:avoid;content-visibility:auto;contain-intrinsic-size:auto 40rem}
 figure svg{width:100%;max-width:52rem;height:auto;display:block}
 figcaption{font-size:.84rem;color:#333;max-width:48rem}
 pre{font-size:.8rem;background:#f6f6f6;padding:.5rem;overflow-x:auto}
@@ -61,7 +61,7 @@ body{max-width:none;margin:0;padding:0;font-size:10pt}
 nav{display:none}
 h2,h3{break-after:avoid;page-break-after:avoid}
 tr,figure,.attention{break-inside:avoid;page-break-inside:avoid}
-figure svg{max-width:16cm}
+figure{content-visibility:visible} figure svg{max-width:16cm}
 thead{display:table-header-group}
 .scroll{overflow:visible}
 a{color:inherit;text-decoration:none}
