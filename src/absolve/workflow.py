@@ -14,15 +14,19 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, get_args
 
+import numpy as np
+
 from .errors import AbsolveError
+from .inverse import InverseModel, InversePrediction
 from .io.files import check_writable, write_all
 from .io.library_file import read_library
-from .inverse import InversePrediction
+from .io.model_file import read_model
 from .io.results import fit_csv, prediction_fit_csv, prediction_results_csv, results_csv, results_json, spectra_csv
 from .io.tables import read_scans
 from .quantify import MixtureResult, quantify
 from .report.figures import FigureFormat, render_figures
 from .report.html import build_report
+from .spectra import Spectra
 
 __all__ = ["FIGURE_FOLDER", "Progress", "QuantifyRequest", "QuantifyOutcome", "run_quantify", "RESULT_FILES"]
 
@@ -90,7 +94,7 @@ def _check_report_options(request: QuantifyRequest) -> FigureFormat | None:
     choices = get_args(FigureFormat)
     if request.figures is not None and request.figures not in choices:
         raise AbsolveError(f"--figures must be one of {', '.join(choices)}; got {request.figures!r}", fix="e.g. --figures svg")
-    if request.figures is not None and request.model is not None:
+    if request.figures is not None and request.library is None:
         raise AbsolveError("--figures needs --library: a PLS model's report has no spectra figures", fix="leave out --figures")
     if request.detail < 0:
         raise AbsolveError(f"--detail must be 0 or more; got {request.detail}", fix="e.g. --detail 12")
@@ -109,9 +113,8 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
         raise AbsolveError(f"{request.out} is a file, not a folder", fix="give --out a folder name")
     file_format = _check_report_options(request)
     check_writable(targets, force=request.force)
-    if request.model is not None:
+    if request.library is None:
         return _run_model(request, targets)
-    assert request.library is not None
     progress("reading", 0, 0)
     library = read_library(request.library)
     spectra = read_scans(request.scans, decimal=request.decimal, quantity=request.quantity)  # type: ignore[arg-type]
@@ -131,6 +134,12 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
         path_length_tolerance=request.path_length_tolerance,
         dilution_tolerance=request.dilution_tolerance,
     )
+    prediction = None
+    if request.model is not None:
+        # Both a library and a PLS model: the library's results lead, the model's are compared with them.
+        progress("predicting with the PLS model", 0, 0)
+        prediction = _predict(read_model(request.model), spectra, request)
+        inputs.append(request.model)
     record = provenance(inputs, _options(request))
     figures = render_figures(
         result, library, detail=request.detail, file_format=file_format, progress=lambda done, total: progress("drawing figures", done, total)
@@ -141,22 +150,51 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
         targets[1]: fit_csv(result),
         targets[2]: spectra_csv(result, "fitted"),
         targets[3]: spectra_csv(result, "residuals"),
-        targets[4]: results_json(result, record),
-        targets[5]: build_report(result, library, record, figures=figures, sections=request.extra_sections),
+        targets[4]: results_json(result, record, None if prediction is None else {"pls": prediction.summary()}),
+        targets[5]: build_report(result, library, record, figures=figures, sections=request.extra_sections, prediction=prediction),
     }
     folder = request.out / FIGURE_FOLDER
     files.update({folder / f"{figure.key}.{file_format}": figure.file for figure in figures if figure.file is not None})
     progress("writing files", 0, 0)
     write_all(files, force=request.force)
     saved = f" and {len(figures)} figures in {folder}/" if file_format is not None else ""
-    text = result.report() + f"\nresults written to {request.out}/ ({', '.join(RESULT_FILES)}){saved}"
+    text = result.report() + (_agreement(result, prediction) if prediction is not None else "")
+    text += f"\nresults written to {request.out}/ ({', '.join(RESULT_FILES)}){saved}"
     return QuantifyOutcome(result, text, json.dumps(result.summary(), indent=1, allow_nan=False), tuple(files))
+
+
+def _predict(model: InverseModel, spectra: Spectra, request: QuantifyRequest) -> InversePrediction:
+    """PLS predictions of ``spectra``, corrected for dilution."""
+    prediction = model.predict(spectra, path_length_cm=request.path_length)
+    if request.dilution == 1.0:
+        return prediction
+    return replace(
+        prediction,
+        concentration=prediction.concentration * request.dilution,
+        std_uncertainty=prediction.std_uncertainty * request.dilution,
+    )
+
+
+def _agreement(result: MixtureResult, prediction: InversePrediction) -> str:
+    """One line: how many library/PLS pairs disagree beyond their expanded uncertainties."""
+    shared = [(j, prediction.components.index(c)) for j, c in enumerate(result.components) if c in prediction.components]
+    rows = {name: i for i, name in enumerate(prediction.names)}
+    total = disagree = 0
+    for i, name in enumerate(result.scan_names):
+        if name not in rows:
+            continue
+        for j, k in shared:
+            a, ua = result.concentration[i, j], result.expanded_uncertainty[i, j]
+            b, ub = prediction.concentration[rows[name], k], 2.0 * prediction.std_uncertainty[rows[name], k]
+            if np.isfinite(a) and np.isfinite(b) and np.isfinite(ua):
+                total += 1
+                disagree += bool(abs(a - b) > np.hypot(ua, ub))
+    return f"\nLibrary and PLS model: {disagree} of {total} results differ by more than their combined expanded uncertainties (see the report)."
 
 
 def _run_model(request: QuantifyRequest, targets: list[Path]) -> QuantifyOutcome:
     """Quantify with a PLS model: the same result files, Q and T^2 in place of the residual test."""
     from .cli._common import provenance
-    from .io.model_file import read_model
     from .report.html import build_model_report
 
     assert request.model is not None
@@ -166,13 +204,7 @@ def _run_model(request: QuantifyRequest, targets: list[Path]) -> QuantifyOutcome
     if request.blank is not None:
         spectra = spectra.subtract_blank(read_scans([request.blank], decimal=request.decimal, quantity=request.quantity))  # type: ignore[arg-type]
         inputs.append(request.blank)
-    prediction = model.predict(spectra, path_length_cm=request.path_length)
-    if request.dilution != 1.0:
-        prediction = replace(
-            prediction,
-            concentration=prediction.concentration * request.dilution,
-            std_uncertainty=prediction.std_uncertainty * request.dilution,
-        )
+    prediction = _predict(model, spectra, request)
     record = provenance(inputs, _options(request))
     n_points = int(model.wavelengths_.size)
     document = {"format": "absolve-results", "version": 1, **prediction.summary(), "provenance": record}

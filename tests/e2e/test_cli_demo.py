@@ -27,10 +27,13 @@ def test_demo_writes_the_library_results_and_report(tmp_path: Path, demo: DemoFi
     code = main(["demo", "--out", str(out)])
     captured = capsys.readouterr()
     assert code == 0, captured.err
-    assert sorted(path.name for path in out.iterdir()) == sorted(["library.json", *RESULT_FILES])
+    assert sorted(path.name for path in out.iterdir()) == sorted(["library.json", "model.json", *RESULT_FILES])
     assert "report.html" in captured.out and "bath-06-strong" in captured.out
+    # The demo also plans filter wavelengths and cross-checks the library with a PLS model.
+    assert "Wavelength plan: 3 wavelengths" in captured.out and "Library and PLS model:" in captured.out
     report = (out / "report.html").read_text(encoding="utf-8")
     assert report.startswith("<!DOCTYPE html>") and "bath-01-start" in report and "Provenance" in report
+    assert "Wavelength plan" in report and "Library and PLS compared" in report
     # The demo's samples are invented, so their truth is known: the clean baths come back within 5 %.
     truth = {(row["scan"], row["component"]): float(row["concentration"]) for row in _rows(demo.bath_samples_truth)}
     results = _rows(out / "results.csv")

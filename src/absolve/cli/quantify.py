@@ -19,7 +19,7 @@ def quantify(
     scans: Annotated[list[Path], typer.Argument(help="Sample scan files (tables or JCAMP-DX).", show_default=False)],
     out: Annotated[Path, typer.Option("--out", help="Folder for results.csv, fit.csv, results.json, report.html.")],
     library: Annotated[Optional[Path], typer.Option("--library", help="Library file from 'absolve calibrate'.")] = None,
-    model: Annotated[Optional[Path], typer.Option("--model", help="PLS model file from 'absolve train'.")] = None,
+    model: Annotated[Optional[Path], typer.Option("--model", help="PLS model file from 'absolve train' (with --library too: both results compared).")] = None,
     baseline: Annotated[str, typer.Option("--baseline", help="Baseline terms: none, offset or linear.")] = "offset",
     wavelength_range: Annotated[Optional[str], typer.Option("--range", help="Use wavelengths LOW:HIGH nm.")] = None,
     path_length: Annotated[float, typer.Option("--path-length", help="Cell path length in cm.")] = 1.0,
@@ -37,8 +37,8 @@ def quantify(
     as_json: Annotated[bool, typer.Option("--json", help="Print the results as JSON instead of a table.")] = False,
 ) -> None:
     """Quantify each component in every scan, with uncertainties, diagnostics and a report."""
-    if (library is None) == (model is None):
-        raise AbsolveError("quantify needs exactly one of --library or --model", fix="e.g. --library lib.json")
+    if library is None and model is None:
+        raise AbsolveError("quantify needs --library, --model, or both (to compare them)", fix="e.g. --library lib.json")
     request = QuantifyRequest(
         scans=list(scans), out=out, library=library, model=model, baseline=baseline,
         wavelength_range=parse_range(wavelength_range), path_length=path_length, dilution=dilution,
