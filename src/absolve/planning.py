@@ -33,7 +33,8 @@ may be required to lie at least some distance apart.
 
 Search
 ------
-For ``K <= 4`` the planner returns a proven optimum by branch and bound over
+For ``K <= 4`` (among at most 600 candidates, or any ``K`` with
+``search="exact"``) the planner returns a proven optimum by branch and bound over
 index sets taken in a fixed order (candidates sorted by falling leverage in
 the full scan, so that the candidates left to complete a late partial set
 are poor). It starts from a greedy plus exchange plan (the incumbent) and
@@ -58,17 +59,19 @@ and are tight near the incumbent, whose vectors they use:
 Sets that pass get the criterion in closed form (determinants and cofactors
 of the small Gram matrices, vectorised over blocks of sets; for the
 condition criterion the eigenvalues of the correlation matrix, in closed
-form up to three components). The condition criterion is flat (many sets
-come within a fraction of a percent of the best), so little can be pruned
-and it is the slowest: about 10 s for ``K = 4`` over 300-370 candidates,
-against 1-5 s for the others. The last two wavelengths of every surviving partial
-set are enumerated from precomputed pair sums. Every step is an exact
-inequality or an exact evaluation, so the result is the optimum, up to a
-relative rounding margin of 1e-9; the tests check it against brute force.
+form up to three components). The last two wavelengths of every surviving
+partial set are enumerated from precomputed pair sums. Every step is an
+exact inequality or an exact evaluation, so the result is the optimum, up to
+a relative rounding margin of 1e-9; the tests check it against brute force.
+Measured on one core for ``K = 4`` over 300 candidates: about 1 s for the
+default criterion; the condition criterion is flat (many sets come within a
+fraction of a percent of the best), so little can be pruned and it takes up
+to about 10 s.
 
-For larger ``K`` (or ``search="greedy"``) the planner runs a greedy forward
-selection followed by Fedorov-style exchange (swap one chosen wavelength for
-one unchosen while the criterion improves) and states how far from optimal
+Otherwise (or with ``search="greedy"``) the planner runs a greedy forward
+selection followed by exchange in the manner of Fedorov (*Theory of Optimal
+Experiments*, 1972): swap one chosen wavelength for one unchosen while the
+criterion improves. It states how far from optimal
 the result can be: ``gap_bound`` is the plan's criterion divided by a lower
 bound on the criterion of *every* plan of ``K`` wavelengths, from the
 inequalities above applied to the best ``K`` candidates per direction, with
@@ -101,8 +104,11 @@ SearchMethod = Literal["auto", "exact", "greedy"]
 CRITERIA: tuple[str, ...] = get_args(Criterion)
 SEARCH_METHODS: tuple[str, ...] = get_args(SearchMethod)
 
-# Up to this many wavelengths the default search is the exact branch and bound.
+# Up to this many wavelengths, among at most this many candidates, the default search is
+# the exact branch and bound (its time grows like candidates^4: about 1-3 s at 300
+# candidates and 20-50 s at 600 on one core); beyond, greedy plus exchange with a gap bound.
 _EXACT_LIMIT = 4
+_EXACT_CANDIDATES = 600
 # At most this many scan windows are planned at once (exhaustive enumeration).
 _WINDOW_LIMIT = 3
 # A design whose unit-diagonal (correlation-scaled) Gram matrix has a determinant
@@ -261,7 +267,8 @@ class WavelengthPlan:
         else:
             lines.append(f"Wavelength plan: {self.wavelengths_nm.size} wavelengths, criterion {self.criterion}")
         if self.optimal:
-            lines.append(f"Optimality: proven optimal ({self.search} search, {self.sets_evaluated} sets evaluated)")
+            what = "windows" if self.windows_nm is not None else "sets"
+            lines.append(f"Optimality: proven optimal ({self.search} search, {self.sets_evaluated} {what} evaluated)")
         else:
             relation = (
                 "the best plan's determinant is at most" if self.criterion == "d-optimal" else "the plan's criterion is at most"
@@ -332,16 +339,16 @@ def _format_objective(criterion: str, value: float) -> str:
 # Scaling the columns by c changes neither the d-optimal argmax nor the condition number.
 
 
-Entry = Callable[[int, int], NDArray[np.float64]]
+_Entry = Callable[[int, int], NDArray[np.float64]]
 """Accessor of a batch of symmetric matrices: ``entry(i, j)`` is the (i, j) element of every matrix."""
 
 
-def _full(entry: Entry, m: int) -> NDArray[np.float64]:
+def _full(entry: _Entry, m: int) -> NDArray[np.float64]:
     """The (..., m, m) array of a batch given by an accessor."""
     return np.stack([np.stack([entry(min(i, j), max(i, j)) for j in range(m)], axis=-1) for i in range(m)], axis=-2)
 
 
-def _cofactor_diagonal(entry: Entry, m: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+def _cofactor_diagonal(entry: _Entry, m: int) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Determinant and diagonal cofactors (shape (..., m)) of a batch of symmetric matrices.
 
     Closed forms up to m = 4 (vectorised over the batch, far cheaper than a batched
@@ -392,7 +399,7 @@ def _cofactor_diagonal(entry: Entry, m: int) -> tuple[NDArray[np.float64], NDArr
     return det, np.diagonal(inverse, axis1=-2, axis2=-1) * det[..., None]
 
 
-def _entry_loss(entry: Entry, m: int, criterion: str, below: float = np.inf) -> NDArray[np.float64]:
+def _entry_loss(entry: _Entry, m: int, criterion: str, below: float = np.inf) -> NDArray[np.float64]:
     """Loss of every matrix of a batch given by an accessor (inf where singular).
 
     For the condition criterion, matrices whose loss cannot come below ``below`` may be
@@ -409,7 +416,7 @@ def _entry_loss(entry: Entry, m: int, criterion: str, below: float = np.inf) -> 
     return np.where(ok, (cof / safe[..., None]).max(axis=-1), np.inf)
 
 
-def _condition_loss(entry: Entry, m: int, below: float) -> NDArray[np.float64]:
+def _condition_loss(entry: _Entry, m: int, below: float) -> NDArray[np.float64]:
     """Squared condition number of the unit-diagonal matrix C = D M D (the correlations of M).
 
     Matrices that cannot come below ``below`` may be returned as inf: they are found by
@@ -629,7 +636,9 @@ def _greedy(
         if candidates.size == 0:
             return None
         gram = outer[chosen].sum(axis=0) + ridge + outer[candidates]
-        loss = _gram_loss(gram, "d-optimal" if criterion == "condition" else criterion)
+        # The condition number is scale-free and flat while fewer than m rows are chosen;
+        # the worst relative variance points the same way and separates the candidates.
+        loss = _gram_loss(gram, "worst-relative" if criterion == "condition" else criterion)
         pick = int(candidates[int(np.argmin(loss))])
         chosen.append(pick)
         allowed[pick] = False
@@ -1072,18 +1081,23 @@ def _window_search(
 
 
 def _expected_concentrations(library: ReferenceLibrary, expected: Mapping[str, float] | None) -> NDArray[np.float64]:
-    given = dict(expected or {})
-    for name, value in given.items():
+    given: dict[str, float] = {}
+    for name, value in (expected or {}).items():
         if name not in library.names:
             raise AbsolveError(
                 f"--expected names {name!r}, which is not in the library",
                 fix="use one of " + ", ".join(library.names),
             )
-        if not (isinstance(value, (int, float)) and math.isfinite(value) and value > 0):
+        try:
+            number = float(value)
+        except (TypeError, ValueError):
+            number = math.nan
+        if not (math.isfinite(number) and number > 0):
             raise AbsolveError(
                 f"--expected {name}={value!r}: the expected concentration must be a number above zero",
                 fix=f"write e.g. --expected {name}=2.5 (in {library.unit})",
             )
+        given[name] = number
     values = []
     for info in library.components:
         value = given.get(info.name, info.expected_concentration)
@@ -1161,7 +1175,8 @@ def plan_wavelengths(
     window_nm : float, optional
         Plan contiguous scan windows at least this wide instead of single wavelengths.
     search : {"auto", "exact", "greedy"}
-        ``"auto"``: exact branch and bound up to 4 wavelengths, greedy plus exchange above.
+        ``"auto"``: exact branch and bound up to 4 wavelengths among at most 600 candidates,
+        greedy plus exchange (with a proven gap bound) otherwise.
 
     Returns
     -------
@@ -1253,7 +1268,7 @@ def plan_wavelengths(
                 fix="lower --min-separation or --count, or widen --range",
             )
     chosen, loss, evaluated = _greedy_exchange(Xc, wavelengths[candidates], count, conflict, min_separation_nm, criterion)
-    exact = search == "exact" or (search == "auto" and count <= _EXACT_LIMIT)
+    exact = search == "exact" or (search == "auto" and count <= _EXACT_LIMIT and candidates.size <= _EXACT_CANDIDATES)
     if exact:
         solver = _BranchAndBound(Xc, count, conflict, criterion, chosen, loss)
         chosen, loss, more = solver.run()

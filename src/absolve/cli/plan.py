@@ -57,7 +57,7 @@ def plan(
         Optional[float], typer.Option("--window", help="Plan contiguous scan windows at least this wide (nm) instead.")
     ] = None,
     search: Annotated[
-        str, typer.Option("--search", help="auto (exact up to 4 wavelengths), exact or greedy.")
+        str, typer.Option("--search", help="auto (exact up to 4 wavelengths among up to 600 candidates), exact or greedy.")
     ] = "auto",
     as_json: Annotated[bool, typer.Option("--json", help="Print the plan as one JSON object.")] = False,
     figure: Annotated[
