@@ -88,7 +88,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Literal, get_args
 
 import numpy as np
@@ -150,7 +150,14 @@ class WavelengthPlan:
     predicted_std_uncertainty : ndarray, shape (n_components,), or None
         Standard uncertainty in ``unit`` predicted from the library's noise model
         (weighted least squares with the noise standard deviation at each wavelength's
-        expected absorbance), or None when the library has no noise model.
+        expected absorbance, independent readings: ``sqrt(diag((K_S^T W K_S)^-1))`` with
+        ``W = diag(1 / sd^2)``), or None when the library has no noise model.
+    correlated_std_uncertainty : ndarray, shape (n_components,), or None
+        The same weighted fit's standard uncertainty when the readings share the noise
+        model's correlation along wavelength (one scan on the calibrating instrument):
+        ``(K^T W K)^-1 K^T W S W K (K^T W K)^-1`` with ``S`` the AR(1) covariance. It differs
+        from ``predicted_std_uncertainty`` only for closely spaced wavelengths (windows).
+        None without a noise model or when the model has no correlation.
     condition_number : float
         2-norm condition number of ``K_S`` with unit-length columns.
     expected_absorbance : ndarray, shape (n_chosen,)
@@ -182,9 +189,6 @@ class WavelengthPlan:
         Least distance between chosen wavelengths.
     n_candidates : int
         Wavelengths within the range and under the ceiling.
-    noise_correlated : bool
-        True when the predicted uncertainty includes the noise model's correlation along
-        wavelength (it matters only for closely spaced wavelengths, e.g. windows).
     """
 
     wavelengths_nm: NDArray[np.float64]
@@ -209,7 +213,7 @@ class WavelengthPlan:
     max_absorbance: float
     min_separation_nm: float
     n_candidates: int
-    noise_correlated: bool = field(default=False)
+    correlated_std_uncertainty: NDArray[np.float64] | None = None
 
     def __post_init__(self) -> None:
         for name in (
@@ -217,6 +221,7 @@ class WavelengthPlan:
             "expected_concentration",
             "relative_uncertainty",
             "predicted_std_uncertainty",
+            "correlated_std_uncertainty",
             "expected_absorbance",
             "full_scan_relative_uncertainty",
         ):
@@ -255,7 +260,7 @@ class WavelengthPlan:
             "max_absorbance": float(self.max_absorbance),
             "min_separation_nm": float(self.min_separation_nm),
             "n_candidates": int(self.n_candidates),
-            "noise_correlated": bool(self.noise_correlated),
+            "correlated_std_uncertainty": per_component(self.correlated_std_uncertainty),
         }
 
     def report(self) -> str:
@@ -294,12 +299,16 @@ class WavelengthPlan:
         header = f"{'component':<{width}}  {'expected (' + self.unit + ')':>16}  {'rel. unc. per unit noise':>24}"
         if self.predicted_std_uncertainty is not None:
             header += f"  {'predicted u (' + self.unit + ')':>20}  {'relative':>9}"
+        if self.correlated_std_uncertainty is not None:
+            header += f"  {'u, correlated noise':>19}"
         lines.append(header)
         for j, name in enumerate(self.component_names):
             row = f"{name:<{width}}  {self.expected_concentration[j]:>16.6g}  {self.relative_uncertainty[j]:>24.6g}"
             if self.predicted_std_uncertainty is not None:
                 u = self.predicted_std_uncertainty[j]
                 row += f"  {u:>20.4g}  {u / self.expected_concentration[j]:>9.2%}"
+            if self.correlated_std_uncertainty is not None:
+                row += f"  {self.correlated_std_uncertainty[j]:>19.4g}"
             lines.append(row)
         lines.append("")
         lines.append(f"Criterion value: {_format_objective(self.criterion, self.objective)}")
@@ -1314,23 +1323,19 @@ def _assemble(
     absorbance = design @ concentration
     relative = _relative_uncertainty(design, concentration)
     full_relative = _relative_uncertainty(full, concentration)
-    predicted = None
-    correlated = False
+    predicted = correlated = None
     noise = library.noise
     if noise is not None:
         sd = noise.standard_deviation(absorbance)
         weighted = design / sd[:, None] ** 2
         inverse = np.linalg.inv(design.T @ weighted)
-        covariance = inverse
+        predicted = np.sqrt(np.diag(inverse))
         if noise.correlation_length_nm > 0:
-            # The weighted fit's true covariance when the noise is correlated along wavelength:
+            # The weighted fit's covariance when the noise is correlated along wavelength:
             # (K^T W K)^-1 K^T W S W K (K^T W K)^-1 with S = diag(sd) R diag(sd), R AR(1).
             spacing = np.abs(wavelengths[chosen][:, None] - wavelengths[chosen][None, :])
             noise_cov = np.exp(-spacing / noise.correlation_length_nm) * sd[:, None] * sd[None, :]
-            middle = weighted.T @ noise_cov @ weighted
-            covariance = inverse @ middle @ inverse
-            correlated = True
-        predicted = np.sqrt(np.diag(covariance))
+            correlated = np.sqrt(np.diag(inverse @ (weighted.T @ noise_cov @ weighted) @ inverse))
     windows = None
     if window:
         breaks = np.flatnonzero(np.diff(chosen) > 1)
@@ -1360,5 +1365,5 @@ def _assemble(
         max_absorbance=float(max_absorbance),
         min_separation_nm=float(min_separation_nm),
         n_candidates=int(np.count_nonzero(under)),
-        noise_correlated=correlated,
+        correlated_std_uncertainty=correlated,
     )

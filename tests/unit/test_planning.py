@@ -190,6 +190,7 @@ def test_reported_values_follow_the_definitions() -> None:
     sd = noise.standard_deviation(design @ conc)
     wls = sm.WLS(design @ conc, design, weights=1.0 / sd**2).fit()
     np.testing.assert_allclose(plan.predicted_std_uncertainty, np.sqrt(np.diag(wls.normalized_cov_params)), rtol=1e-10)
+    assert plan.correlated_std_uncertainty is None  # the noise model has no correlation
     # The full scan uses every candidate; adding rows can only lower the variances (Loewner order).
     full = k.T
     np.testing.assert_allclose(
@@ -240,7 +241,7 @@ def test_monte_carlo_window_with_correlated_noise() -> None:
     noise = NoiseModel(floor=0.002, proportional=0.01, correlation_length_nm=4.0)
     library = make_library(grid, k, ranges=[(0.5, 1.5), (0.5, 1.5)], noise=noise)
     plan = plan_wavelengths(library, 1, window_nm=30.0)
-    assert plan.noise_correlated and plan.windows_nm is not None
+    assert plan.correlated_std_uncertainty is not None and plan.windows_nm is not None
     index = np.searchsorted(grid, plan.wavelengths_nm)
     design = k[:, index].T
     truth = plan.expected_concentration
@@ -248,10 +249,12 @@ def test_monte_carlo_window_with_correlated_noise() -> None:
     n = 20000
     readings = design @ truth + correlated_noise(n, grid[index], 4.0, rng) * sd
     estimates = np.linalg.lstsq(design / sd[:, None], (readings / sd).T, rcond=None)[0].T
-    np.testing.assert_allclose(estimates.std(axis=0, ddof=1), plan.predicted_std_uncertainty, rtol=0.03)
-    # Ignoring the correlation would understate the uncertainty of a 1 nm grid with a 4 nm correlation length.
+    np.testing.assert_allclose(estimates.std(axis=0, ddof=1), plan.correlated_std_uncertainty, rtol=0.03)
+    # Independent readings would give (K^T W K)^-1, which understates the uncertainty of a
+    # 1 nm grid with a 4 nm correlation length.
     white = np.sqrt(np.diag(np.linalg.inv(design.T @ (design / sd[:, None] ** 2))))
-    assert np.all(plan.predicted_std_uncertainty > 1.5 * white)
+    np.testing.assert_allclose(plan.predicted_std_uncertainty, white, rtol=1e-10)
+    assert np.all(plan.correlated_std_uncertainty > 1.5 * white)
 
 
 def test_window_search_matches_every_window() -> None:
@@ -295,6 +298,19 @@ def test_two_disjoint_windows() -> None:
     )
     assert plan.objective == pytest.approx(best, rel=1e-9)
     assert len(plan.windows_nm) == 2 or plan.wavelengths_nm.size == 6  # adjacent windows read as one run
+
+
+def test_auto_search_switches_to_greedy_on_fine_grids() -> None:
+    # Exact search time grows like candidates^4; beyond 600 candidates "auto" plans greedily
+    # and says how far from optimal the plan may be, while "exact" is still honoured on request.
+    grid = np.arange(400.0, 700.5, 0.5)
+    library = make_library(grid, random_absorptivities(grid, 2, np.random.default_rng(51)))
+    plan = plan_wavelengths(library, 2, max_absorbance=100.0)
+    assert plan.n_candidates == 601 and plan.search == "greedy" and not plan.optimal
+    assert 1.0 <= plan.gap_bound < 1.5
+    exact = plan_wavelengths(library, 2, max_absorbance=100.0, search="exact")
+    assert exact.optimal and exact.objective <= plan.objective * (1 + 1e-12)
+    assert plan.objective <= plan.gap_bound * exact.objective * (1 + 1e-9)
 
 
 def test_summary_is_json_and_report_is_readable() -> None:
