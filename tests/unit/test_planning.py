@@ -449,3 +449,19 @@ def test_held_out_four_wavelengths_true_optimum_and_time() -> None:
     assert full.n_candidates == 300 and full.optimal
     # A generous limit for a busy shared machine; the measured time is in the message on failure.
     assert elapsed < 30.0, f"K=4 over 300 candidates took {elapsed:.1f} s"
+
+
+def test_plot_marks_the_plan_with_labelled_axes() -> None:
+    from absolve.report.plan_figure import plot_plan
+
+    grid = np.arange(400.0, 701.0, 5.0)
+    library = make_library(grid, random_absorptivities(grid, 3, np.random.default_rng(61)))
+    plan = plan_wavelengths(library, 4, wavelength_range=(420.0, 680.0))
+    ax = plot_plan(plan, library)
+    assert "nm" in ax.get_xlabel() and "absorbance" in ax.get_ylabel()
+    vertical = [line for line in ax.get_lines() if np.ptp(line.get_xdata()) == 0 and len(line.get_xdata()) == 2]
+    assert sorted(float(line.get_xdata()[0]) for line in vertical) == pytest.approx(list(plan.wavelengths_nm))
+    labels = [text.get_text() for text in ax.get_legend().get_texts()]
+    assert all(any(name in label for label in labels) for name in library.names)
+    # Without an Axes a figure of its own is made through the object API (no pyplot state).
+    assert ax.figure.__class__.__name__ == "Figure"

@@ -69,7 +69,11 @@ def plot_plan(plan: WavelengthPlan, library: ReferenceLibrary, ax: Axes | None =
             ax.axvspan(start, stop, color="0.88", zorder=0)
     if plan.windows_nm is not None:
         for k, (start, stop) in enumerate(plan.windows_nm):
-            ax.axvspan(start, stop, color="#0072B2", alpha=0.18, zorder=0, label="scan window" if k == 0 else None)
+            # Hatched rather than tinted, so the band is not mistaken for a component's colour.
+            ax.axvspan(
+                start, stop, facecolor="none", edgecolor="0.35", hatch="///", linewidth=0.8, zorder=0,
+                label="scan window" if k == 0 else None,
+            )
     else:
         for k, wavelength in enumerate(plan.wavelengths_nm):
             ax.axvline(wavelength, color="0.25", linestyle=":", linewidth=1.0, label="chosen wavelength" if k == 0 else None)
