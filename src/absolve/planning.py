@@ -299,7 +299,12 @@ class WavelengthPlan:
         header = f"{'component':<{width}}  {'expected (' + self.unit + ')':>16}  {'rel. unc. per unit noise':>24}"
         if self.predicted_std_uncertainty is not None:
             header += f"  {'predicted u (' + self.unit + ')':>20}  {'relative':>9}"
-        if self.correlated_std_uncertainty is not None:
+        # The correlated-noise column only when it says something new (closely spaced wavelengths).
+        correlated = self.correlated_std_uncertainty
+        if correlated is not None and self.predicted_std_uncertainty is not None:
+            if np.allclose(correlated, self.predicted_std_uncertainty, rtol=1e-3, atol=0.0):
+                correlated = None
+        if correlated is not None:
             header += f"  {'u, correlated noise':>19}"
         lines.append(header)
         for j, name in enumerate(self.component_names):
@@ -307,8 +312,8 @@ class WavelengthPlan:
             if self.predicted_std_uncertainty is not None:
                 u = self.predicted_std_uncertainty[j]
                 row += f"  {u:>20.4g}  {u / self.expected_concentration[j]:>9.2%}"
-            if self.correlated_std_uncertainty is not None:
-                row += f"  {self.correlated_std_uncertainty[j]:>19.4g}"
+            if correlated is not None:
+                row += f"  {correlated[j]:>19.4g}"
             lines.append(row)
         lines.append("")
         lines.append(f"Criterion value: {_format_objective(self.criterion, self.objective)}")

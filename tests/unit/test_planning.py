@@ -191,6 +191,7 @@ def test_reported_values_follow_the_definitions() -> None:
     wls = sm.WLS(design @ conc, design, weights=1.0 / sd**2).fit()
     np.testing.assert_allclose(plan.predicted_std_uncertainty, np.sqrt(np.diag(wls.normalized_cov_params)), rtol=1e-10)
     assert plan.correlated_std_uncertainty is None  # the noise model has no correlation
+    assert "predicted u (mg/L)" in plan.report() and "correlated noise" not in plan.report()
     # The full scan uses every candidate; adding rows can only lower the variances (Loewner order).
     full = k.T
     np.testing.assert_allclose(
@@ -255,6 +256,7 @@ def test_monte_carlo_window_with_correlated_noise() -> None:
     white = np.sqrt(np.diag(np.linalg.inv(design.T @ (design / sd[:, None] ** 2))))
     np.testing.assert_allclose(plan.predicted_std_uncertainty, white, rtol=1e-10)
     assert np.all(plan.correlated_std_uncertainty > 1.5 * white)
+    assert "u, correlated noise" in plan.report()
 
 
 def test_window_search_matches_every_window() -> None:
