@@ -18,6 +18,8 @@ solve_nonnegative, BatchSolution
     Batch non-negative least squares for scans sharing one design.
 InverseModel, InversePrediction
     PLS inverse calibration from mixture standards.
+plan_wavelengths, WavelengthPlan
+    Analytical wavelengths (or scan windows) that minimise overlap, with a proven optimum.
 read_scans, read_scan_table, read_library, write_library, read_model, write_model
     Files in and out.
 AbsolveError
@@ -40,6 +42,7 @@ from .io.library_file import read_library, write_library
 from .io.model_file import read_model, write_model
 from .io.tables import read_scan_table, read_scans
 from .library import ComponentCalibration, NoiseModel, ReferenceLibrary, library_from_absorptivities
+from .planning import WavelengthPlan, plan_wavelengths
 from .quantify import MixtureResult, quantify
 from .screening import Diagnosis, Screening, SuspectReport, explain_with_suspects, screen_residuals
 from .solver import BatchSolution, solve_nonnegative
@@ -60,10 +63,12 @@ __all__ = [
     "Screening",
     "Spectra",
     "SuspectReport",
+    "WavelengthPlan",
     "calibrate",
     "check_scans",
     "explain_with_suspects",
     "library_from_absorptivities",
+    "plan_wavelengths",
     "quantify",
     "read_library",
     "read_model",
