@@ -19,6 +19,10 @@ from numpy.typing import NDArray
 
 __all__ = ["ar1_coefficients", "whiten", "correlated_norm_squared", "correlated_squared_norms", "effective_points"]
 
+# From this many rows on, the recursion over wavelength beats a banded solve (16 ms against 46 ms
+# for 8192 rows of 400 points; 0.5 ms against 0.3 ms for 16 rows).
+_LOOP_ROWS = 256
+
 
 def ar1_coefficients(wavelengths: NDArray[np.float64], correlation_length_nm: float) -> NDArray[np.float64]:
     """Lag-one correlation ``phi_t`` between consecutive points (``phi_0 = 0``), shape (n,)."""
@@ -60,22 +64,28 @@ def correlated_squared_norms(rows: NDArray[np.float64], phi: NDArray[np.float64]
 def _cholesky_product(rows: NDArray[np.float64], phi: NDArray[np.float64]) -> NDArray[np.float64]:
     """``rows C`` with ``R = C C^T``, same shape as ``rows``.
 
-    The backward recursion ``a_t = v_t + phi_{t+1} a_{t+1}`` is the solution
-    of a unit upper-bidiagonal system; LAPACK solves it for all rows at once
-    (the same operations in the same order as the recursion, without a
-    Python step per wavelength).
+    The backward recursion ``a_t = v_t + phi_{t+1} a_{t+1}`` runs over
+    wavelength with all rows at once, on a wavelength-major copy so that each
+    step reads contiguous memory; for a few rows, where the Python step per
+    wavelength would dominate, LAPACK solves the same unit upper-bidiagonal
+    system (the same operations in the same order).
     """
     n = rows.shape[-1]
     flat = np.reshape(rows, (-1, n))
     if flat.shape[0] == 0:
         return np.zeros(rows.shape)
-    bands = np.ones((2, n))
-    bands[0, 0] = 0.0
-    bands[0, 1:] = -phi[1:]
-    accumulated = scipy.linalg.solve_banded((0, 1), bands, flat.T, check_finite=False).T
+    if flat.shape[0] < _LOOP_ROWS:
+        bands = np.ones((2, n))
+        bands[0, 0] = 0.0
+        bands[0, 1:] = -phi[1:]
+        accumulated = scipy.linalg.solve_banded((0, 1), bands, flat.T, check_finite=False)
+    else:
+        accumulated = np.array(flat.T, order="C")
+        for t in range(n - 2, -1, -1):
+            accumulated[t] += phi[t + 1] * accumulated[t + 1]
     factor = np.ones(n)
     factor[1:] = np.sqrt(1.0 - phi[1:] ** 2)
-    return np.reshape(accumulated * factor, rows.shape)
+    return np.reshape(accumulated.T * factor, rows.shape)
 
 
 def effective_points(phi: NDArray[np.float64]) -> float:

@@ -33,7 +33,8 @@ many degrees of freedom and larger for few.
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+import dataclasses
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from typing import Any, Literal, get_args
 
@@ -44,12 +45,12 @@ from scipy import stats
 from .errors import AbsolveError
 from .library import NoiseModel, ReferenceLibrary
 from .photometry import correct_stray_light
-from .noise import ar1_coefficients, correlated_norm_squared, effective_points, whiten
-from .screening import Screening, screen_residuals
+from .noise import ar1_coefficients, correlated_squared_norms, effective_points, whiten
+from .screening import Screening, _point_patterns as point_patterns, screen_residuals
 from .solver import MAX_CONDITION, solve_nonnegative
 from .spectra import Spectra
 
-__all__ = ["Baseline", "BASELINES", "MixtureResult", "baseline_columns", "quantify", "DEFAULT_CEILING"]
+__all__ = ["Baseline", "BASELINES", "MixtureResult", "baseline_columns", "quantify", "quantify_chunks", "DEFAULT_CEILING"]
 
 Baseline = Literal["none", "offset", "linear"]
 BASELINES: tuple[str, ...] = get_args(Baseline)
@@ -59,7 +60,8 @@ DEFAULT_CEILING = 2.0
 # Variance inflation above 10 marks harmful collinearity (common practice, no source).
 VIF_LIMIT = 10.0
 _COVERAGE_PROBABILITY = 0.9545  # the probability that k = 2 gives for a normal distribution (GUM 6.2.2)
-_CHUNK = 2048  # scans per block in the covariance step, bounding memory
+_CHUNK = 2048  # scans per block of per-point work, bounding memory
+_SCREEN_BLOCK = 4096  # scans per call of the interferent screen
 _MIN_SCREEN_POINTS = 10  # fewer wavelengths leave no room for a residual test
 
 
@@ -270,111 +272,56 @@ def quantify(
     Returns
     -------
     MixtureResult
+
+    Notes
+    -----
+    Scans are processed in blocks (at most a few thousand at a time), so
+    working memory beyond the inputs and the result stays bounded; for
+    batches whose result does not fit in memory, see :func:`quantify_chunks`.
     """
-    _check_options(baseline, path_length, dilution, ceiling, path_length_tolerance, dilution_tolerance, alpha)
-    scans = spectra.to_absorbance()
-    requested = wavelength_range
-    low = max(requested[0] if requested[0] is not None else -np.inf, float(library.wavelengths[0]), float(scans.wavelengths[0]))
-    high = min(requested[1] if requested[1] is not None else np.inf, float(library.wavelengths[-1]), float(scans.wavelengths[-1]))
-    if not low < high:
-        asked = "" if requested == (None, None) else ", the requested range (" + ":".join("" if v is None else f"{v:g}" for v in requested) + " nm)"
-        raise AbsolveError(
-            f"the scans ({scans.wavelengths[0]:g}-{scans.wavelengths[-1]:g} nm){asked} and the library "
-            f"({library.wavelengths[0]:g}-{library.wavelengths[-1]:g} nm) share no wavelength range",
-            fix="use a library calibrated over the scanned range, and a --range inside both",
-            file=scans.source,
-        )
-    scans = scans.restrict(low, high)
-    absorptivity, std_error = library.on_grid(scans.wavelengths)
-    grid = scans.wavelengths
-    n_scans, n_wl = scans.values.shape
-    n_comp = library.n_components
-    design = np.column_stack([absorptivity.T * path_length, baseline_columns(grid, baseline)])
-    n_params = design.shape[1]
-    values = correct_stray_light(scans.values, library.stray_light)
-    unusable = ~np.isfinite(values)
-    limit = library.linear_limit_absorbance
-    above_range = ~unusable & (values > limit) if limit is not None else np.zeros_like(unusable)
-    above_ceiling = ~unusable & (scans.values > ceiling) & ~above_range
-    used = ~(unusable | above_range | above_ceiling)
+    job = _Job(spectra, library, baseline, wavelength_range, path_length, dilution, ceiling, path_length_tolerance, dilution_tolerance, alpha)
+    return job.result(0, job.n_scans)
 
-    out = _Accumulator(n_scans, n_comp, n_params - n_comp, n_wl)
-    patterns, groups = np.unique(used, axis=0, return_inverse=True)
-    groups = groups.reshape(-1)
-    for index, pattern in enumerate(patterns):
-        rows = np.flatnonzero(groups == index)
-        if pattern.sum() < n_params:
-            out.fail(rows)
-            continue
-        _solve_group(
-            out, rows, pattern, design, values, absorptivity * path_length, std_error * path_length,
-            library, grid, n_comp, path_length_tolerance, dilution_tolerance, alpha,
-        )
 
-    scale = dilution
-    concentration = out.concentration * scale
-    budget = {key: value * scale for key, value in out.budget.items()}
-    budget["path_length"] = np.abs(concentration) * path_length_tolerance
-    budget["dilution"] = np.abs(concentration) * dilution_tolerance
-    std_uncertainty = np.sqrt(sum(value**2 for value in budget.values()))
-    effective_dof = _welch_satterthwaite(budget, out.noise_dof, library.residual_dof, std_uncertainty)
-    coverage = np.where(np.isfinite(effective_dof), stats.t.ppf(0.5 + _COVERAGE_PROBABILITY / 2, np.maximum(effective_dof, 1.0)), 2.0)
-    coverage = np.where(np.isnan(std_uncertainty), np.nan, coverage)
-    upper = np.where(out.at_bound, np.maximum(out.unconstrained * scale, 0.0) + coverage * std_uncertainty, np.nan)
-    lod = 3.3 * out.budget["spectral_noise"] * scale
-    loq = 10.0 * out.budget["spectral_noise"] * scale
-    residuals = np.where(used, values - out.fitted, np.nan)
-    screening = _screen(grid, residuals, out, design, used, std_error * path_length, library.noise, library.screening_scale, alpha)
-    interferent = screening.flagged
-    flags, scan_flags = _flags(out, concentration, lod, loq, library, dilution, used, unusable, above_range, above_ceiling, interferent)
-    return MixtureResult(
-        scan_names=scans.names,
-        components=library.names,
-        unit=library.unit,
-        wavelengths=grid,
-        concentration=concentration,
-        std_uncertainty=std_uncertainty,
-        expanded_uncertainty=coverage * std_uncertainty,
-        coverage_factor=coverage,
-        effective_dof=effective_dof,
-        budget=budget,
-        upper_limit=upper,
-        lod=lod,
-        loq=loq,
-        sensitivity=out.sensitivity,
-        selectivity=out.selectivity,
-        variance_inflation=out.vif,
-        baseline=out.baseline,
-        fitted=out.fitted,
-        residuals=residuals,
-        used=used,
-        rms_residual=out.rms,
-        condition_number=out.condition,
-        residual_dof=out.dof,
-        noise_scale=out.noise_scale,
-        residual_p_value=out.p_value,
-        excluded={
-            "unusable": unusable.sum(axis=1),
-            "above_working_range": above_range.sum(axis=1),
-            "above_ceiling": above_ceiling.sum(axis=1),
-        },
-        interferent=interferent,
-        screening=screening,
-        flags=flags,
-        scan_flags=scan_flags,
-        settings={
-            "baseline": baseline,
-            "wavelength_range_nm": [float(grid[0]), float(grid[-1])],
-            "path_length_cm": path_length,
-            "dilution": dilution,
-            "ceiling": ceiling,
-            "linear_limit_absorbance": limit,
-            "path_length_tolerance": path_length_tolerance,
-            "dilution_tolerance": dilution_tolerance,
-            "alpha": alpha,
-            "noise_model": "calibration" if library.noise is not None else "scan residuals",
-        },
-    )
+def quantify_chunks(
+    spectra: Spectra,
+    library: ReferenceLibrary,
+    *,
+    chunk_scans: int = 4096,
+    baseline: Baseline = "offset",
+    wavelength_range: tuple[float | None, float | None] = (None, None),
+    path_length: float = 1.0,
+    dilution: float = 1.0,
+    ceiling: float = DEFAULT_CEILING,
+    path_length_tolerance: float = 0.0,
+    dilution_tolerance: float = 0.0,
+    alpha: float = 0.05,
+) -> Iterator[MixtureResult]:
+    """:func:`quantify`, handed out ``chunk_scans`` consecutive scans at a time.
+
+    Each chunk's :class:`MixtureResult` holds the same numbers as the
+    corresponding scans of ``quantify(spectra, library, ...)``: every scan is
+    fitted before the first chunk is made, so what is estimated from the
+    whole batch (the noise model, when the library has none) is the same.
+    Only one chunk's fitted and residual spectra exist at a time, so a
+    writer that handles the chunks one by one keeps memory bounded whatever
+    the batch size. Options are those of :func:`quantify`; they are checked
+    here, before the first chunk.
+
+    Parameters
+    ----------
+    chunk_scans : int, default 4096
+        Scans per chunk (the last one may be smaller).
+
+    Yields
+    ------
+    MixtureResult
+        One per chunk, in scan order.
+    """
+    if isinstance(chunk_scans, bool) or not isinstance(chunk_scans, (int, np.integer)) or chunk_scans < 1:
+        raise AbsolveError(f"The 'chunk_scans' parameter of quantify_chunks must be an integer >= 1; got {chunk_scans!r} instead.")
+    job = _Job(spectra, library, baseline, wavelength_range, path_length, dilution, ceiling, path_length_tolerance, dilution_tolerance, alpha)
+    return (job.result(start, min(start + int(chunk_scans), job.n_scans)) for start in range(0, job.n_scans, int(chunk_scans)))
 
 
 def _check_options(baseline: str, path_length: float, dilution: float, ceiling: float, tol_b: float, tol_d: float, alpha: float) -> None:
@@ -393,120 +340,404 @@ def _check_options(baseline: str, path_length: float, dilution: float, ceiling: 
 
 
 class _Accumulator:
-    """Per-scan outputs filled group by group."""
+    """Per-scan outputs of a block of scans, filled group by group."""
 
     def __init__(self, n_scans: int, n_comp: int, n_base: int, n_wl: int) -> None:
         nan = np.nan
         self.concentration = np.full((n_scans, n_comp), nan)
-        self.unconstrained = np.full((n_scans, n_comp), nan)
         self.budget = {"spectral_noise": np.full((n_scans, n_comp), nan), "absorptivity": np.full((n_scans, n_comp), nan)}
         self.noise_dof = np.full((n_scans, n_comp), np.inf)
         self.at_bound = np.zeros((n_scans, n_comp), dtype=bool)
-        self.sensitivity = np.full((n_scans, n_comp), nan)
-        self.selectivity = np.full((n_scans, n_comp), nan)
-        self.vif = np.full((n_scans, n_comp), nan)
         self.baseline = np.full((n_scans, n_base), nan)
         self.fitted = np.full((n_scans, n_wl), nan)
         self.rms = np.full(n_scans, nan)
-        self.condition = np.full(n_scans, nan)
         self.dof = np.zeros(n_scans, dtype=np.int64)
         self.noise_scale = np.full(n_scans, nan)
         self.p_value = np.full(n_scans, nan)
-        self.failed = np.zeros(n_scans, dtype=bool)
-        self.singular = np.zeros(n_scans, dtype=bool)
         self.no_model_no_dof = np.zeros(n_scans, dtype=bool)
 
-    def fail(self, rows: NDArray[np.intp]) -> None:
-        self.failed[rows] = True
+
+@dataclass
+class _Group:
+    """Scans sharing their used points: the design on those points and what follows from it alone."""
+
+    points: NDArray[np.intp]
+    rows: NDArray[np.intp]
+    design: NDArray[np.float64] | None = None
+    # Sums for the pooled lag-one correlation of the group's residuals (libraries without a noise model).
+    lag_sum: float = 0.0
+    square_sum: float = 0.0
+    phi: NDArray[np.float64] | None = None
+    # Pseudo-inverse rows and absorptivity sums per set of free parameters, made once per group.
+    propagation: dict[bytes, tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]] = field(default_factory=dict)
 
 
-def _solve_group(
-    out: _Accumulator,
-    rows: NDArray[np.intp],
-    pattern: NDArray[np.bool_],
-    design_full: NDArray[np.float64],
-    values: NDArray[np.float64],
-    absorptivity: NDArray[np.float64],
-    std_error: NDArray[np.float64],
-    library: ReferenceLibrary,
-    grid: NDArray[np.float64],
-    n_comp: int,
-    tol_b: float,
-    tol_d: float,
-    alpha: float,
-) -> None:
-    """Fit, diagnose and propagate uncertainty for scans sharing the same used points."""
-    design = design_full[pattern]
-    targets = values[np.ix_(rows, np.flatnonzero(pattern))]
-    n_used, n_params = design.shape
-    nonnegative = np.arange(n_params) < n_comp
-    scaled = design / np.linalg.norm(design, axis=0)
-    condition = float(np.linalg.cond(scaled))
-    out.condition[rows] = condition
-    sensitivity, selectivity, vif = _figures_of_merit(design, n_comp)
-    out.sensitivity[rows], out.selectivity[rows], out.vif[rows] = sensitivity, selectivity, vif
-    # Beyond the solver's limit the numbers are not worth reporting: a flagged gap, not an error for the whole batch.
-    if condition > MAX_CONDITION:
-        out.fail(rows)
-        out.singular[rows] = True
-        return
-    solution = solve_nonnegative(design, targets, nonnegative=nonnegative)
-    coefficients = solution.coefficients
-    fitted = coefficients @ design.T
-    residual = targets - fitted
-    out.concentration[rows] = coefficients[:, :n_comp]
-    out.baseline[rows] = coefficients[:, n_comp:]
-    out.at_bound[rows] = solution.at_bound[:, :n_comp]
-    out.fitted[np.ix_(rows, np.flatnonzero(pattern))] = fitted
-    out.rms[rows] = np.sqrt(np.mean(residual**2, axis=1))
-    used_grid = grid[pattern]
-    noise = library.noise
-    phi = ar1_coefficients(used_grid, noise.correlation_length_nm if noise is not None else _scan_correlation_length(residual, used_grid))
-    sigma = noise.standard_deviation(fitted) if noise is not None else np.ones_like(fitted)
-    # The residual holds the scan's noise and the calibration's absorptivity
-    # errors times the concentrations; both are correlated along wavelength.
-    se_used = std_error[:, pattern]
-    sigma_total = np.sqrt(sigma**2 + (coefficients[:, :n_comp] ** 2) @ (se_used**2)) if noise is not None else sigma
-    whitened = whiten(residual / sigma_total, phi)
-    unconstrained = np.linalg.lstsq(design, targets.T, rcond=None)[0].T
-    out.unconstrained[rows] = unconstrained[:, :n_comp]
-    free_patterns, free_groups = np.unique(~solution.at_bound, axis=0, return_inverse=True)
-    for f_index, free in enumerate(free_patterns):
-        members = np.flatnonzero(free_groups.reshape(-1) == f_index)
-        _propagate(out, rows[members], design, free, n_comp, sigma[members], whitened[members], phi,
-                   absorptivity[:, pattern], std_error[:, pattern], coefficients[members, :n_comp], noise is not None, alpha)
+class _Job:
+    """A quantification prepared for a whole batch.
 
-
-def _screen(
-    grid: NDArray[np.float64],
-    residuals: NDArray[np.float64],
-    out: _Accumulator,
-    design: NDArray[np.float64],
-    used: NDArray[np.bool_],
-    std_error: NDArray[np.float64],
-    noise: NoiseModel | None,
-    null_scale: float,
-    alpha: float,
-) -> Screening:
-    """Interferent screen of every fitted scan (see :mod:`absolve.screening`).
-
-    The residual also holds the calibration's absorptivity errors times the
-    concentrations; that variance is added to the noise model's so that an
-    imperfect library is not mistaken for an interferent. Without a noise
-    model in the library, one is estimated from the batch's residuals: the
-    screen's main test is a ratio within each scan, so only the correlation
-    length matters, and that is a property of the instrument.
+    The preparation finds every scan's used points and fits every scan (a few
+    numbers per scan); :meth:`result` then makes the full result of any run
+    of consecutive scans, so the batch can be handed out in chunks whose
+    numbers do not depend on the chunking. Per-point arrays are only ever
+    made for blocks of scans.
     """
-    fitted_ok = ~out.failed & np.isfinite(out.fitted).any(axis=1)
-    if grid.size < _MIN_SCREEN_POINTS:
-        return _unscreened(residuals.shape[0], alpha, f"not screened: {grid.size} wavelengths are too few")
-    model = noise if noise is not None else _batch_noise_model(residuals[fitted_ok], grid)
-    extra = np.nan_to_num(out.concentration) ** 2 @ std_error**2
-    usable = used & np.isfinite(residuals) & fitted_ok[:, None]
-    return screen_residuals(
-        grid, np.nan_to_num(residuals), np.nan_to_num(out.fitted), design, model,
-        usable=usable, alpha=alpha, extra_variance=extra, null_scale=null_scale,
-    )
+
+    def __init__(
+        self, spectra: Spectra, library: ReferenceLibrary, baseline: str, wavelength_range: tuple[float | None, float | None],
+        path_length: float, dilution: float, ceiling: float, tol_b: float, tol_d: float, alpha: float,
+        pooled: _Pool | None = None,
+    ) -> None:
+        _check_options(baseline, path_length, dilution, ceiling, tol_b, tol_d, alpha)
+        scans = spectra.to_absorbance()
+        requested = wavelength_range
+        low = max(requested[0] if requested[0] is not None else -np.inf, float(library.wavelengths[0]), float(scans.wavelengths[0]))
+        high = min(requested[1] if requested[1] is not None else np.inf, float(library.wavelengths[-1]), float(scans.wavelengths[-1]))
+        if not low < high:
+            asked = "" if requested == (None, None) else ", the requested range (" + ":".join("" if v is None else f"{v:g}" for v in requested) + " nm)"
+            raise AbsolveError(
+                f"the scans ({scans.wavelengths[0]:g}-{scans.wavelengths[-1]:g} nm){asked} and the library "
+                f"({library.wavelengths[0]:g}-{library.wavelengths[-1]:g} nm) share no wavelength range",
+                fix="use a library calibrated over the scanned range, and a --range inside both",
+                file=scans.source,
+            )
+        inside = np.flatnonzero((scans.wavelengths >= low) & (scans.wavelengths <= high))
+        if inside.size == 0:
+            scans.restrict(low, high)  # raises the error that names the range
+        # The grid is increasing, so the range is a slice: the scans are viewed, never copied whole.
+        window = slice(int(inside[0]), int(inside[-1]) + 1)
+        self.library = library
+        self.names = scans.names
+        self.grid = scans.wavelengths[window]
+        self.measured = scans.values[:, window]
+        self.n_scans, n_wl = self.measured.shape
+        absorptivity, std_error = library.on_grid(self.grid)
+        self.n_comp = library.n_components
+        self.design = np.column_stack([absorptivity.T * path_length, baseline_columns(self.grid, baseline)])
+        self.std_error = std_error * path_length
+        self.options = (baseline, path_length, dilution, ceiling, tol_b, tol_d, alpha)
+        self._find_used_points()
+        self.pool = pooled if pooled is not None or library.noise is not None else _Pool()
+        self._fit(collect=pooled is None and library.noise is None)
+
+    def corrected(self, values: NDArray[np.float64]) -> NDArray[np.float64]:
+        """Measured absorbance with the library's stray-light correction (the values that are fitted)."""
+        return correct_stray_light(values, self.library.stray_light)
+
+    def _find_used_points(self) -> None:
+        limit = self.library.linear_limit_absorbance
+        ceiling = self.options[3]
+        n = self.n_scans
+        self.used = np.empty(self.measured.shape, dtype=bool)
+        self.excluded = {name: np.zeros(n, dtype=np.int64) for name in ("unusable", "above_working_range", "above_ceiling")}
+        for start in range(0, n, _CHUNK):
+            block = slice(start, start + _CHUNK)
+            measured = self.measured[block]
+            values = self.corrected(measured)
+            unusable = ~np.isfinite(values)
+            above_range = ~unusable & (values > limit) if limit is not None else np.zeros_like(unusable)
+            above_ceiling = ~unusable & (measured > ceiling) & ~above_range
+            self.used[block] = ~(unusable | above_range | above_ceiling)
+            self.excluded["unusable"][block] = unusable.sum(axis=1)
+            self.excluded["above_working_range"][block] = above_range.sum(axis=1)
+            self.excluded["above_ceiling"][block] = above_ceiling.sum(axis=1)
+        self.group_of = np.empty(n, dtype=np.intp)
+        self.groups = []
+        for index, (pattern, rows) in enumerate(point_patterns(self.used)):
+            self.group_of[rows] = index
+            self.groups.append(_Group(np.flatnonzero(pattern), rows))
+
+    def _fit(self, collect: bool) -> None:
+        """Fit every scan: coefficients, bounds, unconstrained estimates, conditioning; pooled residual sums if asked."""
+        n, n_comp = self.n_scans, self.n_comp
+        n_params = self.design.shape[1]
+        nonnegative = np.arange(n_params) < n_comp
+        nan = np.nan
+        self.coefficients = np.full((n, n_params), nan)
+        self.at_bound = np.zeros((n, n_comp), dtype=bool)
+        self.unconstrained = np.full((n, n_comp), nan)
+        self.condition = np.full(n, nan)
+        self.sensitivity = np.full((n, n_comp), nan)
+        self.selectivity = np.full((n, n_comp), nan)
+        self.vif = np.full((n, n_comp), nan)
+        self.failed = np.zeros(n, dtype=bool)
+        self.singular = np.zeros(n, dtype=bool)
+        for group in self.groups:
+            rows = group.rows
+            if group.points.size < n_params:
+                self.failed[rows] = True
+                continue
+            design = self.design[group.points]
+            scaled = design / np.linalg.norm(design, axis=0)
+            self.condition[rows] = float(np.linalg.cond(scaled))
+            self.sensitivity[rows], self.selectivity[rows], self.vif[rows] = _figures_of_merit(design, n_comp)
+            # Beyond the solver's limit the numbers are not worth reporting: a flagged gap, not an error for the whole batch.
+            if self.condition[rows[0]] > MAX_CONDITION:
+                self.failed[rows] = True
+                self.singular[rows] = True
+                continue
+            group.design = design
+            unconstrained = np.linalg.pinv(design)[:n_comp]
+            for start in range(0, rows.size, _CHUNK):
+                block = rows[start : start + _CHUNK]
+                targets = self.corrected(self.measured[np.ix_(block, group.points)])
+                solution = solve_nonnegative(design, targets, nonnegative=nonnegative)
+                self.coefficients[block] = solution.coefficients
+                self.at_bound[block] = solution.at_bound[:, :n_comp]
+                self.unconstrained[block] = targets @ unconstrained.T
+                if collect:
+                    residual = targets - solution.coefficients @ design.T
+                    self.pool.add_group(group, residual)
+                    self.pool.add_batch(residual, group.points, self.grid.size)
+        self.fitted_ok = ~self.failed
+        noise = self.library.noise
+        for group in self.groups:
+            if group.design is not None:
+                length = noise.correlation_length_nm if noise is not None else self.pool.group_length(group, self.grid[group.points])
+                group.phi = ar1_coefficients(self.grid[group.points], length)
+
+    def result(self, start: int, stop: int) -> MixtureResult:
+        """The full result of scans ``start`` to ``stop - 1``."""
+        library = self.library
+        baseline, path_length, dilution, ceiling, tol_b, tol_d, alpha = self.options
+        n_comp, grid = self.n_comp, self.grid
+        n = stop - start
+        out = _Accumulator(n, n_comp, self.design.shape[1] - n_comp, grid.size)
+        chunk_groups = self.group_of[start:stop]
+        order = np.argsort(chunk_groups, kind="stable")
+        bounds = np.flatnonzero(np.diff(chunk_groups[order])) + 1
+        for local in np.split(order, bounds):
+            group = self.groups[chunk_groups[local[0]]]
+            if group.design is not None:
+                for first in range(0, local.size, _CHUNK):
+                    self._propagate_block(out, group, local[first : first + _CHUNK], start)
+        failed = self.failed[start:stop]
+        used = self.used[start:stop]
+
+        scale = dilution
+        concentration = out.concentration * scale
+        budget = {key: value * scale for key, value in out.budget.items()}
+        budget["path_length"] = np.abs(concentration) * tol_b
+        budget["dilution"] = np.abs(concentration) * tol_d
+        std_uncertainty = np.sqrt(sum(value**2 for value in budget.values()))
+        effective_dof = _welch_satterthwaite(budget, out.noise_dof, library.residual_dof, std_uncertainty)
+        coverage = np.where(np.isfinite(effective_dof), stats.t.ppf(0.5 + _COVERAGE_PROBABILITY / 2, np.maximum(effective_dof, 1.0)), 2.0)
+        coverage = np.where(np.isnan(std_uncertainty), np.nan, coverage)
+        upper = np.where(out.at_bound, np.maximum(self.unconstrained[start:stop] * scale, 0.0) + coverage * std_uncertainty, np.nan)
+        lod = 3.3 * out.budget["spectral_noise"] * scale
+        loq = 10.0 * out.budget["spectral_noise"] * scale
+        # One array for the residuals, NaN written in place where a point was not used.
+        residuals = self.corrected(self.measured[start:stop]) - out.fitted
+        residuals[~used] = np.nan
+        screening = self._screen(out, residuals, used, chunk_groups, start, stop)
+        interferent = screening.flagged
+        excluded = {key: value[start:stop] for key, value in self.excluded.items()}
+        flags, scan_flags = _flags(
+            out, failed, self.singular[start:stop], self.vif[start:stop], concentration, lod, loq, library, dilution,
+            sum(excluded.values()) > 0, interferent,
+        )
+        return MixtureResult(
+            scan_names=self.names[start:stop],
+            components=library.names,
+            unit=library.unit,
+            wavelengths=grid,
+            concentration=concentration,
+            std_uncertainty=std_uncertainty,
+            expanded_uncertainty=coverage * std_uncertainty,
+            coverage_factor=coverage,
+            effective_dof=effective_dof,
+            budget=budget,
+            upper_limit=upper,
+            lod=lod,
+            loq=loq,
+            sensitivity=self.sensitivity[start:stop].copy(),
+            selectivity=self.selectivity[start:stop].copy(),
+            variance_inflation=self.vif[start:stop].copy(),
+            baseline=out.baseline,
+            fitted=out.fitted,
+            residuals=residuals,
+            used=used.copy(),
+            rms_residual=out.rms,
+            condition_number=self.condition[start:stop].copy(),
+            residual_dof=out.dof,
+            noise_scale=out.noise_scale,
+            residual_p_value=out.p_value,
+            excluded={key: value.copy() for key, value in excluded.items()},
+            interferent=interferent,
+            screening=screening,
+            flags=flags,
+            scan_flags=scan_flags,
+            settings={
+                "baseline": baseline,
+                "wavelength_range_nm": [float(grid[0]), float(grid[-1])],
+                "path_length_cm": path_length,
+                "dilution": dilution,
+                "ceiling": ceiling,
+                "linear_limit_absorbance": library.linear_limit_absorbance,
+                "path_length_tolerance": tol_b,
+                "dilution_tolerance": tol_d,
+                "alpha": alpha,
+                "noise_model": "calibration" if library.noise is not None else "scan residuals",
+            },
+        )
+
+    def _propagate_block(self, out: _Accumulator, group: _Group, local: NDArray[np.intp], start: int) -> None:
+        """Fitted spectrum, residual test and uncertainty budget of a block of scans sharing used points."""
+        assert group.design is not None and group.phi is not None
+        n_comp = self.n_comp
+        rows = local + start
+        points = group.points
+        targets = self.corrected(self.measured[np.ix_(rows, points)])
+        coefficients = self.coefficients[rows]
+        fitted = coefficients @ group.design.T
+        residual = targets - fitted
+        out.concentration[local] = coefficients[:, :n_comp]
+        out.baseline[local] = coefficients[:, n_comp:]
+        out.at_bound[local] = self.at_bound[rows]
+        out.fitted[np.ix_(local, points)] = fitted
+        out.rms[local] = np.sqrt(np.mean(residual**2, axis=1))
+        noise = self.library.noise
+        sigma = noise.standard_deviation(fitted) if noise is not None else np.ones_like(fitted)
+        # The residual holds the scan's noise and the calibration's absorptivity
+        # errors times the concentrations; both are correlated along wavelength.
+        se_used = self.std_error[:, points]
+        sigma_total = np.sqrt(sigma**2 + (coefficients[:, :n_comp] ** 2) @ (se_used**2)) if noise is not None else sigma
+        whitened = whiten(residual / sigma_total, group.phi)
+        # Sets of free parameters are few (at most 2^n_comp): one integer code each.
+        codes = self.at_bound[rows] @ (1 << np.arange(n_comp))
+        for code in np.unique(codes):
+            members = np.flatnonzero(codes == code)
+            free = np.ones(group.design.shape[1], dtype=bool)
+            free[:n_comp] = ~self.at_bound[rows[members[0]]]
+            _propagate(out, local[members], group, free, n_comp, sigma[members], whitened[members],
+                       se_used, coefficients[members, :n_comp], noise is not None, self.options[-1])
+
+    def _screen(
+        self, out: _Accumulator, residuals: NDArray[np.float64], used: NDArray[np.bool_], chunk_groups: NDArray[np.intp], start: int, stop: int,
+    ) -> Screening:
+        """Interferent screen of every fitted scan of the block (see :mod:`absolve.screening`).
+
+        The residual also holds the calibration's absorptivity errors times the
+        concentrations; that variance is added to the noise model's so that an
+        imperfect library is not mistaken for an interferent. Without a noise
+        model in the library, one is estimated from the batch's residuals: the
+        screen's main test is a ratio within each scan, so only the correlation
+        length matters, and that is a property of the instrument.
+        """
+        n = stop - start
+        alpha = self.options[-1]
+        grid = self.grid
+        if grid.size < _MIN_SCREEN_POINTS:
+            return _unscreened(n, alpha, f"not screened: {grid.size} wavelengths are too few")
+        model = self.library.noise if self.library.noise is not None else self.pool.noise_model(grid)
+        fitted_ok = self.fitted_ok[start:stop]
+        # Blocks of scans in used-point order, so that each pattern's geometry is made about once.
+        order = np.argsort(chunk_groups, kind="stable")
+        parts = []
+        for first in range(0, n, _SCREEN_BLOCK):
+            block = np.sort(order[first : first + _SCREEN_BLOCK])
+            resid = residuals[block]
+            extra = np.nan_to_num(out.concentration[block]) ** 2 @ self.std_error**2
+            usable = used[block] & np.isfinite(resid) & fitted_ok[block, None]
+            parts.append((block, screen_residuals(
+                grid, np.nan_to_num(resid), np.nan_to_num(out.fitted[block]), self.design, model,
+                usable=usable, alpha=alpha, extra_variance=extra, null_scale=self.library.screening_scale,
+            )))
+        return _merge_screenings(parts, n)
+
+
+class _Pool:
+    """Residual sums over the whole batch, for libraries without a noise model.
+
+    Pooled over scans, the estimates do not depend on how the batch is cut
+    into blocks; sums from several parts of a batch (e.g. Dask chunks) add up.
+    """
+
+    def __init__(self) -> None:
+        self.groups: dict[bytes, list[float]] = {}
+        self.square_sum = 0.0
+        self.count = 0
+        self.lag_sum = 0.0
+        self.centred_sum = 0.0
+
+    def add_group(self, group: _Group, residual: NDArray[np.float64]) -> None:
+        """The group's lag-one sums (its correlation length sets the group's noise correlation)."""
+        lag, square = _lag_sums(residual)
+        entry = self.groups.setdefault(group.points.tobytes(), [0.0, 0.0])
+        entry[0] += lag
+        entry[1] += square
+
+    def add_batch(self, residual: NDArray[np.float64], points: NDArray[np.intp], n_wl: int) -> None:
+        """Batch-wide sums: residual energy on used points, lag-one sums with unused points as zeros."""
+        self.square_sum += float(np.sum(residual**2))
+        self.count += residual.size
+        full = np.zeros((residual.shape[0], n_wl))
+        full[:, points] = residual
+        lag, square = _lag_sums(full)
+        self.lag_sum += lag
+        self.centred_sum += square
+
+    def merge(self, other: _Pool) -> _Pool:
+        """Sums of two parts of a batch."""
+        merged = _Pool()
+        for source in (self, other):
+            for key, (lag, square) in source.groups.items():
+                entry = merged.groups.setdefault(key, [0.0, 0.0])
+                entry[0] += lag
+                entry[1] += square
+            merged.square_sum += source.square_sum
+            merged.count += source.count
+            merged.lag_sum += source.lag_sum
+            merged.centred_sum += source.centred_sum
+        return merged
+
+    def group_length(self, group: _Group, used_grid: NDArray[np.float64]) -> float:
+        lag, square = self.groups.get(group.points.tobytes(), (0.0, 0.0))
+        return _correlation_length(lag, square, used_grid)
+
+    def noise_model(self, grid: NDArray[np.float64]) -> NoiseModel:
+        """White-or-AR(1) noise model from the batch's residuals, for libraries without one."""
+        floor = float(np.sqrt(self.square_sum / self.count)) if self.count else 1e-3
+        return NoiseModel(floor=max(floor, 1e-6), proportional=0.0, correlation_length_nm=_correlation_length(self.lag_sum, self.centred_sum, grid))
+
+
+def _lag_sums(residual: NDArray[np.float64]) -> tuple[float, float]:
+    """Sums of lag-one products and of squares of the residual rows, each centred on its mean (0, 0 for fewer than 3 points)."""
+    if residual.shape[1] < 3:
+        return 0.0, 0.0
+    centred = residual - residual.mean(axis=1, keepdims=True)
+    return float(np.sum(centred[:, 1:] * centred[:, :-1])), float(np.sum(centred**2))
+
+
+def _correlation_length(lag: float, square: float, grid: NDArray[np.float64]) -> float:
+    """Correlation length from pooled lag-one sums of residuals (no noise model)."""
+    if grid.size < 3:
+        return 0.0
+    rho = lag / square if square > 0 else 0.0
+    if rho <= 0.01:
+        return 0.0
+    return float(-np.median(np.diff(grid)) / np.log(min(rho, 0.99)))
+
+
+def _merge_screenings(parts: list[tuple[NDArray[np.intp], Screening]], n: int) -> Screening:
+    """One screening record from those of blocks of scans (``parts``: the block's positions and its record)."""
+    first = parts[0][1]
+    values: dict[str, Any] = {}
+    for item in dataclasses.fields(Screening):
+        sample = getattr(first, item.name)
+        if isinstance(sample, np.ndarray) and sample.shape[:1] == (parts[0][0].size,):
+            merged = np.empty((n, *sample.shape[1:]), dtype=sample.dtype)
+            for rows, part in parts:
+                merged[rows] = getattr(part, item.name)
+            values[item.name] = merged
+        elif isinstance(sample, tuple) and len(sample) == parts[0][0].size:
+            entries: list[Any] = [None] * n
+            for rows, part in parts:
+                for row, entry in zip(rows.tolist(), getattr(part, item.name)):
+                    entries[row] = entry
+            values[item.name] = tuple(entries)
+        else:
+            values[item.name] = sample
+    return Screening(**values)
 
 
 def _unscreened(n_scans: int, alpha: float, reason: str) -> Screening:
@@ -518,13 +749,6 @@ def _unscreened(n_scans: int, alpha: float, reason: str) -> Screening:
         diagnoses=(None,) * n_scans, smooth_p=nan.copy(), omnibus_p=nan.copy(), noise_ratio=nan.copy(),
         durbin_watson=nan.copy(), smooth_dof=zero, rough_dof=zero.copy(),
     )
-
-
-def _batch_noise_model(residuals: NDArray[np.float64], grid: NDArray[np.float64]) -> NoiseModel:
-    """White-or-AR(1) noise model from a batch's residuals, for libraries without one."""
-    finite = residuals[np.isfinite(residuals)]
-    floor = float(np.sqrt(np.mean(finite**2))) if finite.size else 1e-3
-    return NoiseModel(floor=max(floor, 1e-6), proportional=0.0, correlation_length_nm=_scan_correlation_length(np.nan_to_num(residuals), grid))
 
 
 def _figures_of_merit(design: NDArray[np.float64], n_comp: int) -> tuple[NDArray, NDArray, NDArray]:
@@ -542,35 +766,22 @@ def _figures_of_merit(design: NDArray[np.float64], n_comp: int) -> tuple[NDArray
     return sensitivity, selectivity, 1.0 / selectivity**2
 
 
-def _scan_correlation_length(residual: NDArray[np.float64], grid: NDArray[np.float64]) -> float:
-    """Correlation length from the residuals themselves (no noise model): pooled lag-one correlation."""
-    if residual.shape[1] < 3:
-        return 0.0
-    centred = residual - residual.mean(axis=1, keepdims=True)
-    numerator = float(np.sum(centred[:, 1:] * centred[:, :-1]))
-    denominator = float(np.sum(centred**2))
-    rho = numerator / denominator if denominator > 0 else 0.0
-    if rho <= 0.01:
-        return 0.0
-    return float(-np.median(np.diff(grid)) / np.log(min(rho, 0.99)))
-
-
 def _propagate(
     out: _Accumulator,
     rows: NDArray[np.intp],
-    design: NDArray[np.float64],
+    group: _Group,
     free: NDArray[np.bool_],
     n_comp: int,
     sigma: NDArray[np.float64],
     whitened: NDArray[np.float64],
-    phi: NDArray[np.float64],
-    absorptivity: NDArray[np.float64],
     std_error: NDArray[np.float64],
     concentration: NDArray[np.float64],
     have_model: bool,
     alpha: float,
 ) -> None:
     """Uncertainty contributions for scans sharing used points and the same free parameters."""
+    design, phi = group.design, group.phi
+    assert design is not None and phi is not None
     n_used = design.shape[0]
     n_free = int(free.sum())
     dof = n_used - n_free
@@ -596,23 +807,23 @@ def _propagate(
             out.no_model_no_dof[rows] = True
     out.noise_scale[rows] = scale
     # Every component gets an uncertainty: one held at the bound gets the one it would have if free.
-    pinv_free = _pseudo_inverse(design, free)
-    pinv_all = _pseudo_inverse(design, np.ones_like(free))
-    for start in range(0, len(rows), _CHUNK):
-        block = slice(start, start + _CHUNK)
-        weighted_free = pinv_free[None, :, :] * sigma[block, None, :]
-        weighted_all = pinv_all[None, :n_comp, :] * sigma[block, None, :]
-        variance_free = np.diagonal(correlated_norm_squared(weighted_free, phi), axis1=1, axis2=2)
-        variance_all = np.diagonal(correlated_norm_squared(weighted_all, phi), axis1=1, axis2=2)
-        component_variance = variance_all.copy()
-        free_components = np.flatnonzero(free[:n_comp])
-        component_variance[:, free_components] = variance_free[:, : free_components.size]
-        noise_sd = np.sqrt(component_variance * scale[block, None])
-        if not have_model and dof == 0:
-            noise_sd[:] = np.nan
-        out.budget["spectral_noise"][rows[block]] = noise_sd
-        out.noise_dof[rows[block]] = np.where(uses_scan_scale[block, None], noise_dof, np.inf)
-    out.budget["absorptivity"][rows] = _absorptivity_term(pinv_all[:n_comp], std_error, concentration, phi)
+    key = free.tobytes()
+    if key not in group.propagation:
+        pinv_all = _pseudo_inverse(design, np.ones_like(free))
+        group.propagation[key] = (_pseudo_inverse(design, free), pinv_all, _absorptivity_sums(pinv_all[:n_comp], std_error, phi))
+    pinv_free, pinv_all, sums = group.propagation[key]
+    # One pass for both sets of rows: the free parameters' and every component's as if free.
+    both = np.concatenate([pinv_free, pinv_all[:n_comp]])
+    variance = correlated_squared_norms(both[None, :, :] * sigma[:, None, :], phi)
+    variance_free, component_variance = variance[:, : pinv_free.shape[0]], variance[:, pinv_free.shape[0] :]
+    free_components = np.flatnonzero(free[:n_comp])
+    component_variance[:, free_components] = variance_free[:, : free_components.size]
+    noise_sd = np.sqrt(component_variance * scale[:, None])
+    if not have_model and dof == 0:
+        noise_sd[:] = np.nan
+    out.budget["spectral_noise"][rows] = noise_sd
+    out.noise_dof[rows] = np.where(uses_scan_scale[:, None], noise_dof, np.inf)
+    out.budget["absorptivity"][rows] = np.sqrt(concentration**2 @ sums.T)
 
 
 def _pseudo_inverse(design: NDArray[np.float64], free: NDArray[np.bool_]) -> NDArray[np.float64]:
@@ -621,21 +832,18 @@ def _pseudo_inverse(design: NDArray[np.float64], free: NDArray[np.bool_]) -> NDA
     return np.linalg.solve(sub.T @ sub, sub.T)
 
 
-def _absorptivity_term(
-    pinv_rows: NDArray[np.float64], std_error: NDArray[np.float64], concentration: NDArray[np.float64], phi: NDArray[np.float64]
-) -> NDArray[np.float64]:
-    """Standard uncertainty from absorptivity errors, dc = -P (dK c).
+def _absorptivity_sums(pinv_rows: NDArray[np.float64], std_error: NDArray[np.float64], phi: NDArray[np.float64]) -> NDArray[np.float64]:
+    """Variance of each component per squared concentration of each other from absorptivity errors, dc = -P (dK c).
 
     Each component's absorptivity errors are taken as correlated along
     wavelength like the noise of the standards behind them (AR(1)) and
-    independent between components.
+    independent between components; the standard uncertainty of a scan is
+    ``sqrt(c**2 @ sums.T)``.
     """
     n_comp = pinv_rows.shape[0]
     # weights[j, k, t] = P[j, t] * se[k, t]
     weights = pinv_rows[:, None, :] * std_error[None, :, :]
-    flat = weights.reshape(n_comp * n_comp, -1)
-    sums = np.diagonal(correlated_norm_squared(flat, phi)).reshape(n_comp, n_comp)
-    return np.sqrt(concentration**2 @ sums.T)
+    return correlated_squared_norms(weights.reshape(n_comp * n_comp, -1), phi).reshape(n_comp, n_comp)
 
 
 def _welch_satterthwaite(
@@ -651,46 +859,47 @@ def _welch_satterthwaite(
 
 def _flags(
     out: _Accumulator,
+    failed: NDArray[np.bool_],
+    singular: NDArray[np.bool_],
+    vif: NDArray[np.float64],
     concentration: NDArray[np.float64],
     lod: NDArray[np.float64],
     loq: NDArray[np.float64],
     library: ReferenceLibrary,
     dilution: float,
-    used: NDArray[np.bool_],
-    unusable: NDArray[np.bool_],
-    above_range: NDArray[np.bool_],
-    above_ceiling: NDArray[np.bool_],
+    excluded_any: NDArray[np.bool_],
     interferent: NDArray[np.bool_],
-) -> tuple[tuple[tuple[str, ...], ...], tuple[tuple[str, ...], ...]]:
+) -> tuple[tuple[tuple[tuple[str, ...], ...], ...], tuple[tuple[str, ...], ...]]:
+    """Keywords per scan and component, and per scan (see :data:`FLAG_TEXT`).
+
+    Decided with array operations; the few distinct combinations are then
+    spelt out once each and shared, so a large batch costs no Python work per scan.
+    """
     top = np.array([c.concentration_range[1] if c.concentration_range else np.inf for c in library.components])
-    flags = []
-    scan_flags = []
-    excluded_any = (unusable | above_range | above_ceiling).any(axis=1)
-    for i in range(concentration.shape[0]):
-        scan: list[str] = []
-        failure = "ill-conditioned" if out.singular[i] else "too-few-points"
-        if out.failed[i]:
-            scan.append(failure)
-        if excluded_any[i]:
-            scan.append("points-excluded")
-        if np.nanmax(out.vif[i], initial=0.0) > VIF_LIMIT and not out.singular[i]:
-            scan.append("ill-conditioned")
-        if interferent[i]:
-            scan.append("interferent")
-        if out.dof[i] == 0 and not out.failed[i]:
-            scan.append("no-uncertainty" if out.no_model_no_dof[i] else "no-residual-dof")
-        row = []
-        for j in range(concentration.shape[1]):
-            component: list[str] = []
-            if out.failed[i]:
-                component.append(failure)
-            elif out.at_bound[i, j] or concentration[i, j] < lod[i, j]:
-                component.append("below-detection")
-            elif concentration[i, j] < loq[i, j]:
-                component.append("below-quantification")
-            if concentration[i, j] / dilution > 1.05 * top[j]:
-                component.append("beyond-calibration")
-            row.append(tuple(component))
-        flags.append(tuple(row))
-        scan_flags.append(tuple(scan))
-    return tuple(flags), tuple(scan_flags)
+    failure = np.where(failed, np.where(singular, 1, 2), 0)
+    no_dof = (out.dof == 0) & ~failed
+    with np.errstate(invalid="ignore"):
+        high_vif = (np.fmax.reduce(vif, axis=1, initial=0.0) > VIF_LIMIT) & ~singular
+        below_detection = out.at_bound | (concentration < lod)
+        below_quantification = concentration < loq
+        beyond = concentration / dilution > 1.05 * top
+    level = np.where(failed[:, None], 0, np.where(below_detection, 1, np.where(below_quantification, 2, 0)))
+    codes = np.column_stack([
+        failure, excluded_any, high_vif, interferent, np.where(no_dof, np.where(out.no_model_no_dof, 1, 2), 0),
+        failure[:, None] + 3 * level + 9 * beyond,
+    ]).astype(np.int64)
+    distinct, inverse = np.unique(codes, axis=0, return_inverse=True)
+    failures = ("", "ill-conditioned", "too-few-points")
+    levels = ("", "below-detection", "below-quantification")
+    spelt_flags = []
+    spelt_scan = []
+    for fail, excluded, vif_high, flagged, dof_code, *components in distinct.tolist():
+        words = [failures[fail], "points-excluded" if excluded else "", "ill-conditioned" if vif_high else "",
+                 "interferent" if flagged else "", ("", "no-uncertainty", "no-residual-dof")[dof_code]]
+        spelt_scan.append(tuple(word for word in words if word))
+        spelt_flags.append(tuple(
+            tuple(word for word in (failures[code % 3], levels[code // 3 % 3], "beyond-calibration" if code >= 9 else "") if word)
+            for code in components
+        ))
+    index = inverse.ravel().tolist()
+    return tuple(spelt_flags[i] for i in index), tuple(spelt_scan[i] for i in index)

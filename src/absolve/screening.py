@@ -49,6 +49,7 @@ estimators and likelihood ratio tests under nonstandard conditions. JASA 82, 605
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Literal
@@ -59,7 +60,7 @@ import scipy.linalg
 import scipy.optimize
 import scipy.stats
 from numpy.typing import ArrayLike, NDArray
-from threadpoolctl import threadpool_limits
+from threadpoolctl import ThreadpoolController
 
 from .errors import AbsolveError
 from .library import NoiseModel
@@ -84,6 +85,8 @@ Confidence = Literal["high", "moderate", "low"]
 _MIN_ROUGH_DOF = 5
 # Scans are processed in blocks so the stacked whitened bases stay small in memory.
 _BLOCK = 256
+# Scans per block of the shared-pattern path: its per-scan arrays are a few times n_wl x 32.
+_GROUP_BLOCK = 2048
 # Singular values below this fraction of a matrix's Frobenius norm count as zero.
 _RANK_TOL = 1e-9
 # Gram-matrix eigenvalues (squared singular values) below this fraction of the squared norm count as
@@ -620,6 +623,14 @@ class _Subspaces:
     residual: NDArray[np.float64]  # (n, n_wl) whitened residual projected off the design
     coords: NDArray[np.float64]  # (n, k) residual coordinates in the smooth subspace
 
+    def one(self, i: int) -> _Subspaces:
+        """The subspaces of scan ``i`` of the block alone (views, no copies)."""
+        return _Subspaces(**{
+            item.name: value if isinstance(value, NoiseModel) else value[i : i + 1]
+            for item in dataclasses.fields(self)
+            for value in (getattr(self, item.name),)
+        })
+
     def smooth_orthonormal(self, i: int) -> NDArray[np.float64]:
         """Orthonormal basis (n_wl, k; zero columns beyond the rank) of scan ``i``'s smooth subspace."""
         projected = self.white_smooth[i] - self.guard_basis[i] @ (self.guard_basis[i].T @ self.white_smooth[i])
@@ -674,6 +685,230 @@ def _subspaces(
         mask, rho, previous, linked, sd, noise, design_basis, guard_basis, design_rank, white_smooth, vectors, keep.sum(axis=1),
         off_design, coords,
     )
+
+
+# --------------------------------------------------------------------------- energies in bulk
+
+
+def _energies(
+    grid: NDArray[np.float64],
+    resid: NDArray[np.float64],
+    fit: NDArray[np.float64],
+    x: NDArray[np.float64],
+    mask: NDArray[np.bool_],
+    basis: NDArray[np.float64],
+    noise: NoiseModel,
+    extra: NDArray[np.float64] | None,
+    shared_design: bool,
+) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.int64], NDArray[np.int64]]:
+    """Whitened residual energy off the design, its smooth share, Durbin-Watson numerator and the degrees of freedom.
+
+    Scans sharing the design and their usable points share every subspace
+    before whitening, so those are found once per point pattern
+    (:class:`_PointGeometry`); only the whitening differs from scan to scan.
+    Per-scan designs, and patterns with too few points, take the general
+    path of :func:`_subspaces`.
+    """
+    n_scans = resid.shape[0]
+    energy = np.empty(n_scans)
+    smooth_energy = np.empty(n_scans)
+    dw_numerator = np.empty(n_scans)
+    total_dof = np.empty(n_scans, dtype=np.int64)
+    smooth_dof = np.empty(n_scans, dtype=np.int64)
+    general = np.ones(n_scans, dtype=bool)
+    if shared_design:
+        # One BLAS thread: on a busy machine a second one mostly waits (measured 2-3x slower with two).
+        with _one_blas_thread():
+            _bulk_energies(grid, resid, fit, x[0], mask, basis, noise, extra, (energy, smooth_energy, dw_numerator, total_dof, smooth_dof), general)
+    rows = np.flatnonzero(general)
+    if rows.size:
+        # Stacks of small matrices: BLAS threads only add synchronisation (tens of times slower on a busy machine).
+        with _one_blas_thread():
+            for start in range(0, rows.size, _BLOCK):
+                block = rows[start : start + _BLOCK]
+                sub = _subspaces(grid, resid[block], fit[block], x[block], mask[block], basis, noise, None if extra is None else extra[block])
+                u = sub.residual
+                energy[block] = np.einsum("nw,nw->n", u, u)
+                smooth_energy[block] = np.einsum("nk,nk->n", sub.coords, sub.coords)
+                step = np.where(sub.linked, u - np.take_along_axis(u, sub.previous, axis=1), 0.0)
+                dw_numerator[block] = np.einsum("nw,nw->n", step, step)
+                total_dof[block] = sub.mask.sum(axis=1) - sub.design_rank
+                smooth_dof[block] = sub.smooth_rank
+    return energy, smooth_energy, dw_numerator, total_dof, smooth_dof
+
+
+def _bulk_energies(
+    grid: NDArray[np.float64], resid: NDArray[np.float64], fit: NDArray[np.float64], design: NDArray[np.float64],
+    mask: NDArray[np.bool_], basis: NDArray[np.float64], noise: NoiseModel, extra: NDArray[np.float64] | None,
+    outputs: tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.int64], NDArray[np.int64]],
+    general: NDArray[np.bool_],
+) -> None:
+    """Fill ``outputs`` for the scans the shared-pattern path can take, and clear their ``general`` mark."""
+    energy, smooth_energy, dw_numerator, total_dof, smooth_dof = outputs
+    for points, rows in _point_patterns(mask):
+        geometry = _PointGeometry.build(grid, design, basis, points, noise.correlation_length_nm)
+        if geometry is None:
+            continue
+        for start in range(0, rows.size, _GROUP_BLOCK):
+            sub = rows[start : start + _GROUP_BLOCK]
+            found = geometry.energies(resid[sub], fit[sub], None if extra is None else extra[sub], noise)
+            if found is None:
+                continue
+            energy[sub], smooth_energy[sub], dw_numerator[sub] = found
+            total_dof[sub] = geometry.n_points - geometry.design_rank
+            smooth_dof[sub] = geometry.smooth_rank
+            general[sub] = False
+
+
+def _point_patterns(mask: NDArray[np.bool_]) -> list[tuple[NDArray[np.bool_], NDArray[np.intp]]]:
+    """Distinct rows of ``mask`` with the scans (row indices, increasing) that have each.
+
+    Rows are packed into 64-bit words and sorted by them: sorting rows as
+    byte strings (``np.unique(..., axis=0)``) is many times slower.
+    """
+    n_rows = mask.shape[0]
+    packed = np.packbits(mask, axis=1)
+    words = np.zeros((n_rows, -(-packed.shape[1] // 8) * 8), dtype=np.uint8)
+    words[:, : packed.shape[1]] = packed
+    keys = words.view(np.uint64)
+    order = np.lexsort(keys.T[::-1])  # stable: each pattern's rows stay in increasing order
+    ordered = keys[order]
+    starts = np.flatnonzero(np.concatenate([[True], np.any(ordered[1:] != ordered[:-1], axis=1)]))
+    return [(mask[rows[0]], rows) for rows in np.split(order, starts[1:])]
+
+
+@dataclass(frozen=True)
+class _PointGeometry:
+    """The subspaces of scans that share a design and their usable points, before whitening.
+
+    ``basis`` is orthonormal and nested: its first ``design_rank`` columns
+    span the design, the first ``guard_rank`` the design and its smooth part
+    (the guard of :func:`_subspaces`), and all of them add the cosine basis.
+    Whitening is an invertible map of the usable points, so it carries these
+    spans onto the whitened ones :func:`_subspaces` builds scan by scan; ranks
+    are decided here with the same relative tolerances. For one scan, with
+    ``A = W basis`` (``W`` its whitening), ``H = A^T A = L L^T`` (Cholesky)
+    and ``y = L^-1 A^T w`` for the whitened residual ``w``, the energy in the
+    span of the first ``j`` columns is ``sum(y[:j]**2)``: the smooth energy
+    is ``sum(y[guard_rank:]**2)``.
+
+    ``W^T W = S^-1 T S^-1`` with ``S`` the point standard deviations and ``T``
+    tridiagonal (the AR(1) precision), so every scan's ``H`` is a weighted sum
+    of the fixed products ``b_t b_t^T`` and ``b_t b_{t+1}^T + b_{t+1} b_t^T``
+    of basis rows: one matrix product for a whole block of scans.
+    """
+
+    points: NDArray[np.intp] | slice
+    n_points: int
+    basis: NDArray[np.float64]
+    design_rank: int
+    guard_rank: int
+    smooth_rank: int
+    rho: NDArray[np.float64]
+    root: NDArray[np.float64]
+    precision_diagonal: NDArray[np.float64]
+    precision_off: NDArray[np.float64]
+    products: NDArray[np.float64]  # (2 n_points - 1, r (r + 1) / 2), lower triangle row by row
+
+    @classmethod
+    def build(
+        cls, grid: NDArray[np.float64], design: NDArray[np.float64], basis: NDArray[np.float64], usable: NDArray[np.bool_],
+        correlation_length_nm: float,
+    ) -> _PointGeometry | None:
+        """The geometry of one point pattern; None when it has too few points for this path."""
+        points = np.flatnonzero(usable)
+        d, s = design[points], basis[points]
+        if points.size <= d.shape[1] + s.shape[1]:
+            return None
+        # The smooth part of each design column over the usable points, as _smooth_projection.
+        smooth = s @ (np.linalg.pinv(s.T @ s, hermitian=True) @ (s.T @ d))
+        u_d, sv_d, _ = np.linalg.svd(d, full_matrices=False)
+        design_rank = int(np.count_nonzero(sv_d > _RANK_TOL * np.linalg.norm(d)))
+        guard = np.hstack([d, smooth])
+        guard_rank = int(np.count_nonzero(np.linalg.svd(guard, compute_uv=False) > _RANK_TOL * np.linalg.norm(guard)))
+        q_d = u_d[:, :design_rank]
+        u_e = np.linalg.svd(smooth - q_d @ (q_d.T @ smooth), full_matrices=False)[0][:, : max(guard_rank - design_rank, 0)]
+        q_g = np.hstack([q_d, u_e])
+        u_f, sv_f, _ = np.linalg.svd(s - q_g @ (q_g.T @ s), full_matrices=False)
+        smooth_rank = int(np.count_nonzero(sv_f**2 > _GRAM_TOL * np.einsum("wk,wk->", s, s)))
+        nested = np.hstack([q_g, u_f[:, :smooth_rank]])
+        rho = np.zeros(points.size)
+        if correlation_length_nm > 0:
+            rho[1:] = np.exp(-np.diff(grid[points]) / correlation_length_nm)
+        c2 = 1.0 - rho**2
+        diagonal = 1.0 / c2
+        diagonal[:-1] += rho[1:] ** 2 / c2[1:]
+        row, column = np.tril_indices(nested.shape[1])
+        products = np.vstack([
+            nested[:, row] * nested[:, column],
+            nested[:-1, row] * nested[1:, column] + nested[1:, row] * nested[:-1, column],
+        ])
+        # A run of consecutive points is taken as a slice: no gathered copy of each block.
+        span = slice(int(points[0]), int(points[-1]) + 1) if points[-1] - points[0] == points.size - 1 else points
+        return cls(span, points.size, nested, design_rank, q_g.shape[1], smooth_rank, rho, np.sqrt(c2), diagonal, -rho[1:] / c2[1:], products)
+
+    def _whiten(self, values: NDArray[np.float64], sd: NDArray[np.float64]) -> NDArray[np.float64]:
+        """Prais-Winsten whitening of rows over the usable points (as :func:`_whiten`)."""
+        z = values / sd
+        out = np.empty_like(z)
+        out[:, 0] = z[:, 0]
+        out[:, 1:] = (z[:, 1:] - self.rho[1:] * z[:, :-1]) / self.root[1:]
+        return out
+
+    def energies(
+        self, resid: NDArray[np.float64], fit: NDArray[np.float64], extra: NDArray[np.float64] | None, noise: NoiseModel
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]] | None:
+        """Energy off the design, smooth energy and Durbin-Watson numerator of each scan; None if a Gram matrix is not positive definite.
+
+        The Cholesky factor of ``[[H, g], [g^T, .]]`` with ``g = A^T w`` holds
+        ``y = L^-1 g`` as its last row; it is computed for all scans at once,
+        one column at a time.
+        """
+        p = self.points
+        sd = noise.standard_deviation(fit[:, p])
+        if extra is not None:
+            sd = np.sqrt(sd**2 + extra[:, p])
+        w = self._whiten(resid[:, p], sd)
+        n_scans, n = w.shape
+        inverse = 1.0 / sd
+        weights = np.empty((n_scans, 2 * n - 1))
+        weights[:, :n] = self.precision_diagonal * inverse**2
+        weights[:, n:] = self.precision_off * (inverse[:, :-1] * inverse[:, 1:])
+        r = self.basis.shape[1]
+        row, column = np.tril_indices(r)
+        factor = np.zeros((n_scans, r + 1, r + 1))
+        factor.reshape(n_scans, -1)[:, row * (r + 1) + column] = weights @ self.products
+        back = w / self.root  # W^T w = S^-1 L^T w, with L the bidiagonal AR(1) whitening
+        back[:, :-1] -= self.rho[1:] * w[:, 1:] / self.root[1:]
+        factor[:, r, :r] = (back * inverse) @ self.basis
+        for j in range(r):
+            pivot = factor[:, j, j] - np.einsum("nk,nk->n", factor[:, j, :j], factor[:, j, :j])
+            if not np.all(pivot > 0):
+                return None
+            factor[:, j, j] = np.sqrt(pivot)
+            below = factor[:, j + 1 :, j] - np.einsum("nik,nk->ni", factor[:, j + 1 :, :j], factor[:, j, :j])
+            factor[:, j + 1 :, j] = below / factor[:, j, j, None]
+        y = factor[:, r, :r]
+        k = self.design_rank
+        if k:
+            # Design coefficients of the whitened residual: back-substitution in the leading block.
+            coefficients = np.empty((n_scans, k))
+            for j in range(k - 1, -1, -1):
+                coefficients[:, j] = (y[:, j] - np.einsum("nk,nk->n", factor[:, j + 1 : k, j], coefficients[:, j + 1 :])) / factor[:, j, j]
+            w = w - self._whiten(coefficients @ self.basis[:, :k].T, sd)
+        step = np.diff(w, axis=1)
+        smooth = y[:, self.guard_rank :]
+        return np.einsum("nt,nt->n", w, w), np.einsum("nk,nk->n", smooth, smooth), np.einsum("nt,nt->n", step, step)
+
+
+_CONTROLLER: list[ThreadpoolController] = []
+
+
+def _one_blas_thread() -> Any:
+    """Limit BLAS to one thread (a context manager); the library lookup is made once per process."""
+    if not _CONTROLLER:
+        _CONTROLLER.append(ThreadpoolController())
+    return _CONTROLLER[0].limit(limits=1, user_api="blas")
 
 
 # --------------------------------------------------------------------------- screening
@@ -801,23 +1036,9 @@ def screen_residuals(
     if extra is not None and (extra.shape != resid.shape or np.any(extra[mask] < 0)):
         raise AbsolveError(f"extra_variance must be (n_scans, {grid.size}) and >= 0, got shape {extra.shape}")
 
-    energy = np.empty(n_scans)
-    smooth_energy = np.empty(n_scans)
-    dw_numerator = np.empty(n_scans)
-    total_dof = np.empty(n_scans, dtype=np.int64)
-    smooth_dof = np.empty(n_scans, dtype=np.int64)
-    for start in range(0, n_scans, _BLOCK):
-        block = slice(start, min(start + _BLOCK, n_scans))
-        # Stacks of small matrices: BLAS threads only add synchronisation (tens of times slower on a busy machine).
-        with threadpool_limits(limits=1, user_api="blas"):
-            sub = _subspaces(grid, resid[block], fit[block], x[block], mask[block], basis, noise, None if extra is None else extra[block])
-        u = sub.residual
-        energy[block] = np.einsum("nw,nw->n", u, u)
-        smooth_energy[block] = np.einsum("nk,nk->n", sub.coords, sub.coords)
-        step = np.where(sub.linked, u - np.take_along_axis(u, sub.previous, axis=1), 0.0)
-        dw_numerator[block] = np.einsum("nw,nw->n", step, step)
-        total_dof[block] = sub.mask.sum(axis=1) - sub.design_rank
-        smooth_dof[block] = sub.smooth_rank
+    # A stack of identical designs is a shared one: the same subspaces, and the bulk path.
+    shared_design = x.strides[0] == 0 or bool(np.all(x == x[:1]))
+    energy, smooth_energy, dw_numerator, total_dof, smooth_dof = _energies(grid, resid, fit, x, mask, basis, noise, extra, shared_design)
 
     rough_dof = total_dof - smooth_dof
     testable = (rough_dof >= _MIN_ROUGH_DOF) & (smooth_dof >= 1)
@@ -834,11 +1055,15 @@ def screen_residuals(
     diagnoses: list[Diagnosis | None] = [None] * n_scans
     if diagnose and flagged.any():
         fixed = _fixed_families(grid)
-        for i in np.flatnonzero(flagged):
-            one = slice(i, i + 1)
-            with threadpool_limits(limits=1, user_api="blas"):
-                sub = _subspaces(grid, resid[one], fit[one], x[one], mask[one], basis, noise, None if extra is None else extra[one])
-                diagnoses[i] = _diagnose(grid, fit[i], sub, smooth_p[i] < (1.0 - omnibus_share) * alpha, fixed)
+        # One thread limit around the whole loop: setting it looks up the BLAS libraries (milliseconds a time).
+        with _one_blas_thread():
+            rows = np.flatnonzero(flagged)
+            # The flagged scans' subspaces are made a block at a time; each diagnosis takes its scan's share.
+            for start in range(0, rows.size, _BLOCK):
+                block = rows[start : start + _BLOCK]
+                sub = _subspaces(grid, resid[block], fit[block], x[block], mask[block], basis, noise, None if extra is None else extra[block])
+                for position, i in enumerate(block.tolist()):
+                    diagnoses[i] = _diagnose(grid, fit[i], sub.one(position), smooth_p[i] < (1.0 - omnibus_share) * alpha, fixed)
     method = (
         f"whitened smooth-subspace F test ({terms} cosine terms) + omnibus chi-square at {noise_tolerance:g}x "
         f"modelled noise, weighted Bonferroni ({1 - omnibus_share:g}/{omnibus_share:g})"
