@@ -154,43 +154,52 @@ class MixtureResult:
 
     def summary(self) -> dict[str, Any]:
         """JSON-safe record of every number, per scan, with the uncertainty budget."""
+        # Arrays become nested lists once (NaN and infinity as None); the loop below only assembles records.
+        per_component = {
+            key: _json_rows(getattr(self, key))
+            for key in ("concentration", "std_uncertainty", "expanded_uncertainty", "coverage_factor", "effective_dof", "upper_limit",
+                        "lod", "loq", "sensitivity", "selectivity", "variance_inflation")
+        }
+        budgets = {key: _json_rows(value) for key, value in self.budget.items()}
+        per_scan = {
+            key: _json_rows(value)
+            for key, value in (("rms_residual", self.rms_residual), ("condition_number", self.condition_number),
+                               ("noise_scale", self.noise_scale), ("residual_p_value", self.residual_p_value),
+                               ("interferent_p_value", self.screening.p_value))
+        }
+        baselines = _json_rows(self.baseline)
+        dofs = self.residual_dof.tolist()
+        points = self.used.sum(axis=1).tolist()
+        excluded = {key: value.tolist() for key, value in self.excluded.items()}
+        interferent = self.interferent.tolist()
         scans = []
         for i, name in enumerate(self.scan_names):
             components = []
             for j, component in enumerate(self.components):
-                components.append(
-                    {
-                        "component": component,
-                        "concentration": _json_number(self.concentration[i, j]),
-                        "std_uncertainty": _json_number(self.std_uncertainty[i, j]),
-                        "expanded_uncertainty": _json_number(self.expanded_uncertainty[i, j]),
-                        "coverage_factor": _json_number(self.coverage_factor[i, j]),
-                        "effective_dof": _json_number(self.effective_dof[i, j]),
-                        "budget": {key: _json_number(value[i, j]) for key, value in self.budget.items()},
-                        "upper_limit": _json_number(self.upper_limit[i, j]),
-                        "lod": _json_number(self.lod[i, j]),
-                        "loq": _json_number(self.loq[i, j]),
-                        "sensitivity": _json_number(self.sensitivity[i, j]),
-                        "selectivity": _json_number(self.selectivity[i, j]),
-                        "variance_inflation": _json_number(self.variance_inflation[i, j]),
-                        "flags": list(self.flags[i][j]),
-                    }
-                )
+                record: dict[str, Any] = {"component": component}
+                for key in ("concentration", "std_uncertainty", "expanded_uncertainty", "coverage_factor", "effective_dof"):
+                    record[key] = per_component[key][i][j]
+                record["budget"] = {key: value[i][j] for key, value in budgets.items()}
+                for key in ("upper_limit", "lod", "loq", "sensitivity", "selectivity", "variance_inflation"):
+                    record[key] = per_component[key][i][j]
+                record["flags"] = list(self.flags[i][j])
+                components.append(record)
+            diagnosis = self.screening.diagnoses[i]
             scans.append(
                 {
                     "scan": name,
                     "components": components,
-                    "baseline": [_json_number(v) for v in self.baseline[i]],
-                    "rms_residual": _json_number(self.rms_residual[i]),
-                    "condition_number": _json_number(self.condition_number[i]),
-                    "residual_dof": int(self.residual_dof[i]),
-                    "noise_scale": _json_number(self.noise_scale[i]),
-                    "residual_p_value": _json_number(self.residual_p_value[i]),
-                    "points_used": int(self.used[i].sum()),
-                    "excluded": {key: int(value[i]) for key, value in self.excluded.items()},
-                    "interferent": bool(self.interferent[i]),
-                    "interferent_p_value": _json_number(self.screening.p_value[i]),
-                    "diagnosis": None if self.screening.diagnoses[i] is None else self.screening.diagnoses[i].summary(),
+                    "baseline": baselines[i],
+                    "rms_residual": per_scan["rms_residual"][i],
+                    "condition_number": per_scan["condition_number"][i],
+                    "residual_dof": int(dofs[i]),
+                    "noise_scale": per_scan["noise_scale"][i],
+                    "residual_p_value": per_scan["residual_p_value"][i],
+                    "points_used": int(points[i]),
+                    "excluded": {key: int(value[i]) for key, value in excluded.items()},
+                    "interferent": bool(interferent[i]),
+                    "interferent_p_value": per_scan["interferent_p_value"][i],
+                    "diagnosis": None if diagnosis is None else diagnosis.summary(),
                     "flags": list(self.scan_flags[i]),
                 }
             )
@@ -216,9 +225,13 @@ FLAG_TEXT: dict[str, str] = {
 }
 
 
-def _json_number(value: float) -> float | None:
-    number = float(value)
-    return number if np.isfinite(number) else None
+def _json_rows(values: NDArray[Any]) -> list[Any]:
+    """``values.tolist()`` with every non-finite number as None (JSON has no NaN)."""
+    array = np.asarray(values, dtype=np.float64)
+    finite = np.isfinite(array)
+    if finite.all():
+        return array.tolist()
+    return np.where(finite, array, None).tolist()
 
 
 def baseline_columns(wavelengths: NDArray[np.float64], baseline: str) -> NDArray[np.float64]:

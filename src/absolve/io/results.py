@@ -1,8 +1,12 @@
 """Result files of a quantification: results.csv, fit.csv, fitted/residual spectra, results.json.
 
-All text is produced in memory with fixed float formatting and stable
-ordering, so the same inputs give byte-identical files; time stamps live only
-in the provenance of results.json and the report.
+All text is produced with fixed float formatting and stable ordering, so the
+same inputs give byte-identical files; time stamps live only in the
+provenance of results.json and the report. Columns are formatted a whole
+array at a time and rows joined once, so a batch of many thousands of scans
+costs no Python work per cell beyond the number's own formatting; the wide
+spectra tables can also be had row by row (:func:`spectra_csv_lines`) to be
+written without holding their text.
 """
 
 from __future__ import annotations
@@ -10,18 +14,41 @@ from __future__ import annotations
 import csv
 import io
 import json
+import math
+from collections.abc import Iterator, Sequence
 from typing import Any
 
 import numpy as np
+from numpy.typing import NDArray
 
 from ..inverse import InversePrediction
 from ..quantify import MixtureResult
+from .tables import csv_field, wide_table_lines
 
-__all__ = ["results_csv", "fit_csv", "spectra_csv", "results_json", "prediction_results_csv", "prediction_fit_csv"]
+__all__ = [
+    "results_csv", "fit_csv", "spectra_csv", "spectra_csv_lines", "results_json", "prediction_results_csv", "prediction_fit_csv",
+]
+
+_RESULTS_HEADER = (
+    "scan", "component", "concentration", "std_uncertainty", "expanded_uncertainty", "coverage_factor",
+    "unit", "upper_limit", "lod", "loq", "flags",
+)
 
 
 def _number(value: float, spec: str = ".6g") -> str:
     return format(float(value), spec) if np.isfinite(value) else ""
+
+
+def _numbers(values: NDArray[Any], spec: str = ".6g") -> list[str]:
+    """``_number`` of every value of an array, in C order."""
+    return [format(value, spec) if math.isfinite(value) else "" for value in np.ravel(values).astype(np.float64).tolist()]
+
+
+def _rows(header: Sequence[str], columns: Sequence[Sequence[str]]) -> str:
+    """CSV text: a header line, then one line per position of the (already quoted) columns."""
+    lines = [",".join(csv_field(name) for name in header)]
+    lines.extend(map(",".join, zip(*columns)))
+    return "\n".join(lines) + "\n"
 
 
 def _writer() -> tuple[io.StringIO, Any]:
@@ -31,23 +58,23 @@ def _writer() -> tuple[io.StringIO, Any]:
 
 def results_csv(result: MixtureResult) -> str:
     """One row per scan and component: concentration, uncertainties, LOD, flags."""
-    buffer, writer = _writer()
-    writer.writerow(
-        ["scan", "component", "concentration", "std_uncertainty", "expanded_uncertainty", "coverage_factor",
-         "unit", "upper_limit", "lod", "loq", "flags"]
-    )
-    for i, scan in enumerate(result.scan_names):
-        for j, component in enumerate(result.components):
-            writer.writerow(
-                [
-                    scan, component,
-                    _number(result.concentration[i, j]), _number(result.std_uncertainty[i, j]),
-                    _number(result.expanded_uncertainty[i, j]), _number(result.coverage_factor[i, j], ".4g"),
-                    result.unit, _number(result.upper_limit[i, j]), _number(result.lod[i, j]), _number(result.loq[i, j]),
-                    ";".join(result.flags[i][j]),
-                ]
-            )
-    return buffer.getvalue()
+    n_comp = len(result.components)
+    joined: dict[tuple[str, ...], str] = {}
+    flags = [joined.setdefault(words, csv_field(";".join(words))) for scan in result.flags for words in scan]
+    columns = [
+        [name for name in map(csv_field, result.scan_names) for _ in range(n_comp)],
+        [csv_field(component) for component in result.components] * result.n_scans,
+        _numbers(result.concentration),
+        _numbers(result.std_uncertainty),
+        _numbers(result.expanded_uncertainty),
+        _numbers(result.coverage_factor, ".4g"),
+        [csv_field(result.unit)] * (result.n_scans * n_comp),
+        _numbers(result.upper_limit),
+        _numbers(result.lod),
+        _numbers(result.loq),
+        flags,
+    ]
+    return _rows(_RESULTS_HEADER, columns)
 
 
 def fit_csv(result: MixtureResult, extra: dict[str, list[str]] | None = None) -> str:
@@ -55,53 +82,70 @@ def fit_csv(result: MixtureResult, extra: dict[str, list[str]] | None = None) ->
 
     ``extra`` adds columns (name -> one text per scan), e.g. screening diagnoses.
     """
-    buffer, writer = _writer()
     extra = extra or {}
-    writer.writerow(
-        ["scan", "rms_residual", "condition_number", "interferent", "interferent_p_value", "diagnosis", "diagnosis_confidence",
-         "diagnosis_window_nm", "unexplained_absorbance", "residual_p_value", "residual_dof",
-         "noise_scale", "points_used", "points_excluded", *extra, "flags"]
-    )
+    n = result.n_scans
+    kind, confidence, window, size = [""] * n, [""] * n, [""] * n, [""] * n
+    for i, diagnosis in enumerate(result.screening.diagnoses):
+        if diagnosis is not None:
+            kind[i] = csv_field(diagnosis.kind)
+            confidence[i] = csv_field(diagnosis.confidence)
+            window[i] = f"{diagnosis.window_nm[0]:g}-{diagnosis.window_nm[1]:g}"
+            size[i] = _number(diagnosis.size_absorbance, ".3g")
     excluded = sum(result.excluded.values())
-    diagnoses = result.screening.diagnoses
-    for i, scan in enumerate(result.scan_names):
-        diagnosis = diagnoses[i]
-        writer.writerow(
-            [
-                scan, _number(result.rms_residual[i]), _number(result.condition_number[i], ".4g"),
-                "true" if result.interferent[i] else "false", _number(result.screening.p_value[i], ".4g"),
-                "" if diagnosis is None else diagnosis.kind,
-                "" if diagnosis is None else diagnosis.confidence,
-                "" if diagnosis is None else f"{diagnosis.window_nm[0]:g}-{diagnosis.window_nm[1]:g}",
-                "" if diagnosis is None else _number(diagnosis.size_absorbance, ".3g"),
-                _number(result.residual_p_value[i], ".4g"),
-                int(result.residual_dof[i]), _number(result.noise_scale[i], ".4g"),
-                int(result.used[i].sum()), int(excluded[i]), *(values[i] for values in extra.values()),
-                ";".join(result.scan_flags[i]),
-            ]
-        )
-    return buffer.getvalue()
+    joined: dict[tuple[str, ...], str] = {}
+    columns = [
+        [csv_field(name) for name in result.scan_names],
+        _numbers(result.rms_residual),
+        _numbers(result.condition_number, ".4g"),
+        ["true" if flagged else "false" for flagged in result.interferent.tolist()],
+        _numbers(result.screening.p_value, ".4g"),
+        kind, confidence, window, size,
+        _numbers(result.residual_p_value, ".4g"),
+        [str(int(dof)) for dof in result.residual_dof.tolist()],
+        _numbers(result.noise_scale, ".4g"),
+        [str(int(count)) for count in result.used.sum(axis=1).tolist()],
+        [str(int(count)) for count in np.asarray(excluded).tolist()],
+        *([csv_field(str(value)) for value in values] for values in extra.values()),
+        [joined.setdefault(words, csv_field(";".join(words))) for words in result.scan_flags],
+    ]
+    header = (
+        "scan", "rms_residual", "condition_number", "interferent", "interferent_p_value", "diagnosis", "diagnosis_confidence",
+        "diagnosis_window_nm", "unexplained_absorbance", "residual_p_value", "residual_dof",
+        "noise_scale", "points_used", "points_excluded", *extra, "flags",
+    )
+    return _rows(header, columns)
 
 
 def spectra_csv(result: MixtureResult, which: str) -> str:
     """Fitted or residual spectra in the wide scan-table layout (empty cells where a point was not used)."""
+    return "".join(spectra_csv_lines(result, which))
+
+
+def spectra_csv_lines(result: MixtureResult, which: str) -> Iterator[str]:
+    """The lines of :func:`spectra_csv`, one wavelength row at a time (for writing a large table in pieces)."""
     values = result.fitted if which == "fitted" else result.residuals
-    buffer, writer = _writer()
-    writer.writerow(["wavelength_nm", *result.scan_names])
-    # Rounding first, then adding 0.0, writes values that round to zero as "0.000000", never "-0.000000".
-    formatted = np.where(np.isfinite(values), np.char.mod("%.6f", np.round(np.nan_to_num(values), 6) + 0.0), "")
-    for j, wavelength in enumerate(result.wavelengths):
-        # Shortest text that reads back to the same float, as in scan tables: fine grids must not collapse.
-        writer.writerow([np.format_float_positional(wavelength, trim="-"), *formatted[:, j]])
-    return buffer.getvalue()
+    # Rounding value * 1e6 (np.round's way) writes values that round to zero as "0.000000", never "-0.000000".
+    return wide_table_lines("wavelength_nm", result.scan_names, result.wavelengths, values, missing="", rounding="scaled")
 
 
 def results_json(result: MixtureResult, provenance: dict[str, Any], extra: dict[str, Any] | None = None) -> str:
-    """Everything, including the uncertainty budget, as JSON."""
-    document = {"format": "absolve-results", "version": 1, **result.summary(), "provenance": provenance}
-    if extra:
-        document.update(extra)
-    return json.dumps(document, indent=1, allow_nan=False) + "\n"
+    """Everything, including the uncertainty budget, as JSON: one line per scan, so large batches stay readable and quick to write.
+
+    ``{"format", "version", "unit", "components", "settings", "scans": [...],
+    "provenance", ...extra}``; each scan is the record of
+    :meth:`MixtureResult.summary`.
+    """
+    summary = result.summary()
+    scans = summary.pop("scans")
+    head = {"format": "absolve-results", "version": 1, **summary}
+    tail = {"provenance": provenance, **(extra or {})}
+    parts = [json.dumps(head, allow_nan=False)[:-1], ', "scans": [\n']
+    parts.append(",\n".join(map(_compact_json, scans)))
+    parts.append("\n], " + json.dumps(tail, indent=1, allow_nan=False)[1:] + "\n")
+    return "".join(parts)
+
+
+_compact_json = json.JSONEncoder(allow_nan=False).encode
 
 
 def prediction_results_csv(prediction: InversePrediction) -> str:
