@@ -333,7 +333,7 @@ class InversePrediction:
     outside : ndarray of bool, shape (n_scans,)
         Scan beyond the Q or T^2 limit, or incomplete: unlike the training scans.
     beyond_range : ndarray of bool, shape (n_scans, n_components)
-        Predicted concentration outside the training range (extrapolation).
+        Predicted concentration outside the training range (extrapolation), or not finite.
     complete : ndarray of bool, shape (n_scans,)
         False when the scan has unusable (saturated) points on the model grid;
         its results are NaN.
@@ -698,7 +698,9 @@ class InverseModel:
         high = np.array([m.training_range[1] for m in self.component_models_])
         with np.errstate(invalid="ignore"):
             outside = ~complete | (q > check.q_limit) | (t2 > check.t2_limit)
-            beyond = (concentration < low) | (concentration > high)
+            # A complete scan with a non-finite prediction (a model file edited to absurd numbers) is
+            # flagged with the extrapolations, so that no result table shows a bare empty cell for it.
+            beyond = (concentration < low) | (concentration > high) | (complete[:, None] & ~np.isfinite(concentration))
         return InversePrediction(
             names=spectra.names,
             components=self.components_,

@@ -37,3 +37,22 @@ def one_error_line(err: str) -> str:
 def snapshot(folder: Path) -> dict[str, bytes]:
     """Every file under ``folder`` (relative path -> bytes), hidden and temporary ones included."""
     return {str(path.relative_to(folder)): path.read_bytes() for path in sorted(folder.rglob("*")) if path.is_file()}
+
+
+def read_rows(path: Path) -> list[dict[str, str]]:
+    """The rows of a CSV file written by absolve, as dicts."""
+    import csv
+    import io
+
+    return list(csv.DictReader(io.StringIO(path.read_text(encoding="utf-8"))))
+
+
+def assert_no_bare_gaps(results: Path) -> list[dict[str, str]]:
+    """Every empty (NaN) concentration or uncertainty in results.csv has a flag saying why; returns the rows."""
+    rows = read_rows(results)
+    for row in rows:
+        if row["concentration"] == "" or row["std_uncertainty"] == "":
+            assert row["flags"], f"unexplained empty cell in {results.name}: {row}"
+        for key in ("concentration", "std_uncertainty"):
+            assert row[key].lower() not in ("nan", "inf", "-inf"), row
+    return rows
