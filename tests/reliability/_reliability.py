@@ -56,3 +56,38 @@ def assert_no_bare_gaps(results: Path) -> list[dict[str, str]]:
         for key in ("concentration", "std_uncertainty"):
             assert row[key].lower() not in ("nan", "inf", "-inf"), row
     return rows
+
+
+def write_large_scan_table(path: Path, grid: "np.ndarray", absorbance: "np.ndarray", *, block: int = 4096) -> None:
+    """Write scans (rows of ``absorbance``) as a wide scan table with 4 decimals, fast.
+
+    Formatting 37 million numbers one by one takes minutes; here every cell is
+    the same 7 characters (sign or leading zero, one digit, point, four
+    decimals), built digit by digit with numpy, a block of wavelengths at a time.
+
+    Parameters
+    ----------
+    grid : ndarray, shape (n_wavelengths,)
+        Whole-nanometre wavelengths.
+    absorbance : ndarray, shape (n_scans, n_wavelengths)
+        Values in (-10, 10).
+    """
+    import numpy as np
+
+    n_scans = absorbance.shape[0]
+    with open(path, "wb") as stream:
+        stream.write(("wavelength_nm," + ",".join(f"scan-{i:06d}" for i in range(n_scans)) + "\n").encode())
+        for start in range(0, grid.size, max(1, block * 64 // n_scans)):
+            rows = absorbance[:, start : start + max(1, block * 64 // n_scans)].T  # (wavelengths, scans)
+            counts = np.rint(np.abs(rows) * 1e4).astype(np.int64)
+            cells = np.empty(rows.shape + (8,), dtype=np.uint8)
+            cells[..., 0] = np.where(rows < 0, ord("-"), ord("0"))
+            cells[..., 1] = 48 + counts // 10_000 % 10
+            cells[..., 2] = ord(".")
+            for place, power in enumerate((1000, 100, 10, 1), start=3):
+                cells[..., place] = 48 + counts // power % 10
+            cells[..., 7] = ord(",")
+            cells[:, -1, 7] = ord("\n")
+            for wavelength, row in zip(grid[start : start + rows.shape[0]], cells):
+                stream.write(f"{wavelength:g},".encode())
+                stream.write(row.tobytes())

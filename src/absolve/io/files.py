@@ -5,12 +5,19 @@ from __future__ import annotations
 import hashlib
 import os
 import tempfile
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from pathlib import Path
 
 from ..errors import AbsolveError
 
-__all__ = ["atomic_write", "check_writable", "file_sha256", "refuse_pickle", "write_all"]
+__all__ = ["Content", "atomic_write", "check_writable", "file_sha256", "refuse_pickle", "write_all"]
+
+Content = str | bytes | Iterable[str | bytes]
+"""What a file receives: text (written as UTF-8), bytes, or an iterable of such chunks.
+
+Chunks are written as they are produced, so a large file need never exist
+whole in memory; an exception while producing them counts as a failed write.
+"""
 
 
 def file_sha256(path: str | os.PathLike[str]) -> str:
@@ -51,31 +58,35 @@ def check_writable(paths: list[Path], *, force: bool) -> None:
         )
 
 
-def atomic_write(path: str | os.PathLike[str], content: str | bytes) -> None:
+def atomic_write(path: str | os.PathLike[str], content: Content) -> None:
     """Write ``content`` to ``path`` through a temporary file and a rename.
 
     Readers see the old file or the new one, never half of one.
     """
-    target = Path(path)
+    write_all({Path(path): content}, force=True)
+
+
+def _stage(target: Path, content: Content) -> Path:
+    """Write ``content`` to a new temporary file beside ``target`` (``.NAME.*.part``) and return its path."""
     try:
         target.parent.mkdir(parents=True, exist_ok=True)
-        data = content.encode("utf-8") if isinstance(content, str) else content
         handle, temporary = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
     except OSError as error:
         raise AbsolveError(f"cannot write {target}: {error.strerror}", fix="check the folder exists and is writable") from None
     try:
         with os.fdopen(handle, "wb") as stream:
-            stream.write(data)
+            for chunk in (content,) if isinstance(content, (str, bytes)) else content:
+                stream.write(chunk.encode("utf-8") if isinstance(chunk, str) else chunk)
         # mkstemp creates the file readable by its owner only; give it the
         # permissions an ordinary new file would get, so colleagues can read results.
         os.chmod(temporary, 0o666 & ~_umask())
-        os.replace(temporary, target)
     except OSError as error:
         Path(temporary).unlink(missing_ok=True)
-        raise AbsolveError(f"cannot write {target}: {error.strerror}", fix="check the path names a file in a writable folder, with free space") from None
+        raise AbsolveError(f"cannot write {target}: {error.strerror}", fix="check there is free space on the disk") from None
     except BaseException:
         Path(temporary).unlink(missing_ok=True)
         raise
+    return Path(temporary)
 
 
 def _umask() -> int:
@@ -85,20 +96,37 @@ def _umask() -> int:
     return mask
 
 
-def write_all(files: Mapping[Path, str | bytes], *, force: bool) -> None:
-    """Write several files, each atomically, after checking none would be overwritten unasked.
+def write_all(files: Mapping[Path, Content], *, force: bool) -> None:
+    """Write several files after checking none would be overwritten unasked: all of them, or none.
 
     The contents are all prepared before this is called, so a failure in the
-    computation leaves no file behind.
+    computation leaves no file behind. Every file is first written in full
+    to a temporary file beside its target; only when all are on disk are
+    they renamed into place. A failure or an interruption while writing
+    (a full disk, Ctrl-C) therefore removes the temporary files and leaves
+    any earlier results untouched, also with ``force``.
     """
-    check_writable(list(files), force=force)
-    written: list[Path] = []
+    targets = [Path(path) for path in files]
+    check_writable(targets, force=force)
+    staged: list[Path] = []
+    replaced: list[Path] = []
     try:
-        for path, content in files.items():
-            atomic_write(path, content)
-            written.append(path)
+        for target, content in zip(targets, files.values()):
+            staged.append(_stage(target, content))
+        for temporary, target in zip(staged, targets):
+            try:
+                os.replace(temporary, target)
+            except OSError as error:
+                raise AbsolveError(
+                    f"cannot write {target}: {error.strerror}", fix="check the path names a file in a writable folder"
+                ) from None
+            replaced.append(target)
     except BaseException:
+        for temporary in staged:
+            temporary.unlink(missing_ok=True)
+        # Renames take microseconds, so a failure among them is rare; without
+        # force the results already renamed into place are taken away again.
         if not force:
-            for path in written:
-                path.unlink(missing_ok=True)
+            for target in replaced:
+                target.unlink(missing_ok=True)
         raise
