@@ -61,7 +61,7 @@ DEFAULT_CEILING = 2.0
 VIF_LIMIT = 10.0
 _COVERAGE_PROBABILITY = 0.9545  # the probability that k = 2 gives for a normal distribution (GUM 6.2.2)
 _CHUNK = 2048  # scans per block of per-point work, bounding memory
-_SCREEN_BLOCK = 4096  # scans per call of the interferent screen
+_SCREEN_BLOCK = 2048  # scans per call of the interferent screen (its working arrays are some 20 times the block's values)
 _MIN_SCREEN_POINTS = 10  # fewer wavelengths leave no room for a residual test
 
 
@@ -312,10 +312,12 @@ def quantify_chunks(
 ) -> Iterator[MixtureResult]:
     """:func:`quantify`, handed out ``chunk_scans`` consecutive scans at a time.
 
-    Each chunk's :class:`MixtureResult` holds the same numbers as the
+    Each chunk's :class:`MixtureResult` holds the numbers of the
     corresponding scans of ``quantify(spectra, library, ...)``: every scan is
     fitted before the first chunk is made, so what is estimated from the
     whole batch (the noise model, when the library has none) is the same.
+    They agree to rounding, not always to the last bit: BLAS products can
+    round differently for a different number of rows in a call.
     Only one chunk's fitted and residual spectra exist at a time, so a
     writer that handles the chunks one by one keeps memory bounded whatever
     the batch size. Options are those of :func:`quantify`; they are checked

@@ -11,22 +11,29 @@ written without holding their text.
 
 from __future__ import annotations
 
+import contextlib
 import csv
 import io
 import json
 import math
-from collections.abc import Iterator, Sequence
-from typing import Any
+import os
+import tempfile
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from pathlib import Path
+from typing import Any, TextIO
 
 import numpy as np
 from numpy.typing import NDArray
 
+from ..errors import AbsolveError
 from ..inverse import InversePrediction
 from ..quantify import MixtureResult
-from .tables import csv_field, wide_table_lines
+from .files import _umask, check_writable
+from .tables import csv_field, fixed_decimals, wide_table_lines
 
 __all__ = [
-    "results_csv", "fit_csv", "spectra_csv", "spectra_csv_lines", "results_json", "prediction_results_csv", "prediction_fit_csv",
+    "results_csv", "fit_csv", "spectra_csv", "spectra_csv_lines", "results_json", "write_results_in_chunks", "STREAMED_FILES",
+    "prediction_results_csv", "prediction_fit_csv",
 ]
 
 _RESULTS_HEADER = (
@@ -146,6 +153,110 @@ def results_json(result: MixtureResult, provenance: dict[str, Any], extra: dict[
 
 
 _compact_json = json.JSONEncoder(allow_nan=False).encode
+
+
+#: Files :func:`write_results_in_chunks` can write, by name.
+STREAMED_FILES = ("results.csv", "fit.csv", "fitted.csv", "residuals.csv", "results.json")
+
+
+def write_results_in_chunks(
+    chunks: Iterable[MixtureResult], targets: Mapping[str, Path], *, provenance: dict[str, Any], force: bool = False
+) -> int:
+    """Write result files from results handed out chunk by chunk (see :func:`absolve.quantify.quantify_chunks`).
+
+    The files are laid out exactly as :func:`results_csv`, :func:`fit_csv`,
+    :func:`spectra_csv` and :func:`results_json` lay out the whole batch's
+    result (byte for byte the same given the same numbers), but only one
+    chunk is held at a time: memory stays bounded
+    whatever the number of scans. Long tables are appended chunk by chunk;
+    the wide spectra tables (one column per scan) are written as one column
+    block per chunk into scratch files and joined row by row at the end.
+    Every file goes to a temporary name beside its target and all are
+    renamed only when everything has succeeded (as :func:`absolve.io.files.write_all`).
+
+    Parameters
+    ----------
+    chunks : iterable of MixtureResult
+        Consecutive runs of scans of one batch, in order.
+    targets : mapping of str to Path
+        File name in :data:`STREAMED_FILES` -> where to write it; any subset.
+    provenance : dict
+        Recorded in results.json.
+    force : bool
+        Replace existing files.
+
+    Returns
+    -------
+    int
+        Number of scans written.
+    """
+    unknown = sorted(set(targets) - set(STREAMED_FILES))
+    if unknown:
+        raise AbsolveError(f"cannot stream {unknown[0]!r}", fix="choose among " + ", ".join(STREAMED_FILES))
+    check_writable(list(targets.values()), force=force)
+    with contextlib.ExitStack() as stack:
+        scratch = Path(stack.enter_context(tempfile.TemporaryDirectory(prefix=".absolve-", dir=_common_folder(targets.values()))))
+        temporary = {name: scratch / name for name in targets}
+        handles = {name: stack.enter_context(open(path, "w", encoding="utf-8", newline="")) for name, path in temporary.items()}
+        names: list[str] = []
+        parts: dict[str, list[Path]] = {"fitted.csv": [], "residuals.csv": []}
+        first: MixtureResult | None = None
+        for index, chunk in enumerate(chunks):
+            head = first is None
+            first = first or chunk
+            names.extend(chunk.scan_names)
+            for name, write in (("results.csv", results_csv), ("fit.csv", fit_csv)):
+                if name in handles:
+                    text = write(chunk)
+                    handles[name].write(text if head else text[text.index("\n") + 1 :])
+            for name, which in (("fitted.csv", "fitted"), ("residuals.csv", "residuals")):
+                if name in handles:
+                    part = scratch / f"{which}-{index:06d}.part"
+                    values = chunk.fitted if which == "fitted" else chunk.residuals
+                    with open(part, "w", encoding="utf-8", newline="") as stream:
+                        stream.writelines(fixed_decimals(values[:, j], "", "scaled") + "\n" for j in range(values.shape[1]))
+                    parts[name].append(part)
+            if "results.json" in handles:
+                summary = chunk.summary()
+                scans = ",\n".join(map(_compact_json, summary.pop("scans")))
+                if head:
+                    handles["results.json"].write(json.dumps({"format": "absolve-results", "version": 1, **summary}, allow_nan=False)[:-1] + ', "scans": [\n' + scans)
+                else:
+                    handles["results.json"].write(",\n" + scans)
+        if first is None:
+            raise AbsolveError("no scans to write", fix="give at least one scan")
+        if "results.json" in handles:
+            handles["results.json"].write("\n], " + json.dumps({"provenance": provenance}, indent=1, allow_nan=False)[1:] + "\n")
+        for name in ("fitted.csv", "residuals.csv"):
+            if name in handles:
+                _join_columns(handles[name], "wavelength_nm", names, first.wavelengths, parts[name], stack)
+        for handle in handles.values():
+            handle.close()
+        for name, path in temporary.items():
+            os.chmod(path, 0o666 & ~_umask())
+        for name, path in temporary.items():
+            os.replace(path, targets[name])
+    return len(names)
+
+
+def _join_columns(handle: TextIO, first_header: str, names: Sequence[str], wavelengths: NDArray[np.float64], parts: list[Path], stack: contextlib.ExitStack) -> None:
+    """The wide table from column blocks: the header, then per wavelength the row's pieces joined."""
+    handle.write(",".join(csv_field(name) for name in (first_header, *names)) + "\n")
+    with contextlib.ExitStack() as inner:
+        blocks = [inner.enter_context(open(part, encoding="utf-8", newline="")) for part in parts]
+        for wavelength in wavelengths:
+            pieces = [block.readline().rstrip("\n") for block in blocks]
+            handle.write(np.format_float_positional(wavelength, trim="-") + "," + ",".join(pieces) + "\n")
+
+
+def _common_folder(paths: Iterable[Path]) -> Path:
+    """The folder of the first target, created if needed (scratch files go beside the results, on the same disk)."""
+    folder = Path(next(iter(paths))).parent
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as error:
+        raise AbsolveError(f"cannot write into {folder}: {error.strerror}", fix="check the folder is writable") from None
+    return folder
 
 
 def prediction_results_csv(prediction: InversePrediction) -> str:
