@@ -345,3 +345,14 @@ def test_awkward_encodings_are_read_not_refused(encoding: str, tmp_path: Path, c
     assert code == 0, err
     header = out.read_text(encoding="utf-8").splitlines()[1]
     assert header == "wavelength_nm,échantillon-1,µ-probe,sample-3"
+
+
+@pytest.mark.parametrize("encoding", ["utf-16-le", "utf-16", "utf-32"])
+def test_jcamp_files_in_wide_encodings_are_read(encoding: str, tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    jdx = tmp_path / "samples.jdx"
+    assert run(capsys, ["convert", GOOD / "samples.csv", "--out", jdx])[0] == 0
+    wide = tmp_path / "wide.jdx"
+    wide.write_bytes(jdx.read_text(encoding="utf-8").encode(encoding))
+    code, _, err = run(capsys, ["convert", wide, "--out", tmp_path / "back.csv"])
+    assert code == 0, err
+    assert (tmp_path / "back.csv").read_text(encoding="utf-8").splitlines()[1] == "wavelength_nm,sample-1,sample-2,sample-3"

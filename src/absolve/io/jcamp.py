@@ -46,6 +46,7 @@ from numpy.typing import NDArray
 
 from ..errors import AbsolveError
 from ..spectra import QUANTITIES, Quantity, Spectra, stack_spectra
+from .tables import _wide_text
 
 __all__ = ["read_jcamp", "write_jcamp"]
 
@@ -136,15 +137,14 @@ def _load_text(path: Path) -> str:
     try:
         raw = path.read_bytes()
     except FileNotFoundError:
-        raise AbsolveError(f"{path} does not exist", fix="check the file name", file=path) from None
+        raise AbsolveError("does not exist", fix="check the file name", file=path) from None
     except OSError as error:
-        raise AbsolveError(f"cannot read {path}: {error.strerror}", fix="check the file permissions", file=path) from None
-    if raw.startswith((b"\xff\xfe", b"\xfe\xff")):  # a UTF-16 export announces itself with a byte-order mark
-        try:
-            return raw.decode("utf-16")
-        except UnicodeDecodeError:
-            pass
+        raise AbsolveError(f"cannot read: {error.strerror}", fix="check the file permissions", file=path) from None
     if b"\x00" in raw:
+        # UTF-16 (with or without byte-order mark) and UTF-32 exports are text all the same.
+        text = _wide_text(raw)
+        if text is not None:
+            return text
         line = raw[: raw.index(b"\x00")].count(b"\n") + 1
         raise AbsolveError(
             "the file holds binary data (a NUL byte), not JCAMP-DX text",
@@ -812,8 +812,10 @@ def write_jcamp(spectra: Spectra, *, compress: bool = False) -> str:
     if spectra.n_scans == 1:
         lines = _block(spectra.names[0], spectra.wavelengths, values[0], y_units, compress=compress, block_id=None)
     else:
+        # The title names the source files, not their folders: the same scans converted anywhere give the same bytes.
+        title = ", ".join(Path(part).name for part in spectra.source.split(", ")) if spectra.source else "absolve scans"
         lines = [
-            f"##TITLE={' '.join((spectra.source or 'absolve scans').split())}",
+            f"##TITLE={' '.join(title.split())}",
             "##JCAMP-DX=4.24",
             "##DATA TYPE=LINK",
             f"##BLOCKS={spectra.n_scans}",
