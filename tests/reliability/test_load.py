@@ -1,0 +1,86 @@
+"""Load check: 100,000 scans quantified by the installed program in bounded memory and time.
+
+The scans are simulated mixtures of three invented absorbers (absolve.simulate),
+written as one wide scan table; the program runs as a subprocess of a small
+Python process whose only child it is, so that ``RUSAGE_CHILDREN`` gives the
+program's own peak resident memory. The budget is four times the scans' float64
+size plus 300 MB (interpreter, numpy, matplotlib and the report), and ten minutes.
+
+Slow and large (the 371-wavelength file is 300 MB of text): run with
+ABSOLVE_SLOW=1.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from _reliability import CONSOLE_SCRIPT, SLOW, assert_no_bare_gaps, read_rows, write_large_scan_table
+from absolve.io.library_file import write_library
+from absolve.library import library_from_absorptivities
+from absolve.simulate import Instrument, measure, random_absorptivities
+
+N_SCANS = 100_000
+TIME_LIMIT_S = 600.0
+# Runs a command as its only child and prints that child's peak resident memory in kB (Linux ru_maxrss unit).
+_MEASURE = (
+    "import resource, subprocess, sys\n"
+    "code = subprocess.run(sys.argv[1:]).returncode\n"
+    "print(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss, code)\n"
+)
+# Measured 2026-12-02 on the 2-core test machine (shared), before quantify and the writers were chunked:
+#   100,000 x 50 wavelengths (40 MB of float64): 63 s, peak 2.8 GB against a budget of 460 MB;
+#   100,000 x 371 wavelengths (297 MB): 155 s, peak 4.3 GB against a budget of 1.5 GB.
+# In-process stages for 371 wavelengths (peak so far): reading 0.7 GB, quantify 1.2 GB (53 s), fitted and
+# residual tables +0.7 GB of text, results.json +0.7 GB (every scan a Python dict, then one string); the
+# command line then dumps result.summary() to JSON once more for --json, asked for or not.
+OVER_BUDGET = pytest.mark.xfail(
+    strict=False,
+    reason="peak memory about 3-6x the budget (4.3 GB for 100,000 x 371 wavelengths, budget 1.5 GB; 2.8 GB for x 50, "
+    "budget 460 MB): result tables and results.json are built whole in memory; waiting for chunked quantify and "
+    "streamed writers (absolve.io.files.write_all accepts chunk iterables)",
+)
+
+
+def _inputs(folder: Path, n_wavelengths: int) -> tuple[Path, Path, int]:
+    rng = np.random.default_rng(2026)
+    grid = np.linspace(380.0, 750.0, n_wavelengths).round(2)
+    absorptivity = random_absorptivities(grid, 3, rng)
+    absorptivity /= absorptivity.max(axis=1, keepdims=True)
+    library = folder / "library.json"
+    write_library(library_from_absorptivities(grid, absorptivity, ["a", "b", "c"], "mg/L"), library)
+    scans = folder / "scans.csv"
+    values = measure(grid, rng.uniform(0.05, 0.5, (N_SCANS, 3)) @ absorptivity, Instrument(), rng)
+    write_large_scan_table(scans, grid, values)
+    return scans, library, values.nbytes
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(not SLOW, reason="quantifies 100,000 scans (minutes, GBs): set ABSOLVE_SLOW=1 to run it")
+@pytest.mark.skipif(not CONSOLE_SCRIPT.exists(), reason=f"no installed console script at {CONSOLE_SCRIPT}")
+@pytest.mark.parametrize("n_wavelengths", [pytest.param(50, marks=OVER_BUDGET), pytest.param(371, marks=OVER_BUDGET)])
+def test_quantify_100000_scans_in_bounded_memory(n_wavelengths: int, tmp_path: Path) -> None:
+    scans, library, data_bytes = _inputs(tmp_path, n_wavelengths)
+    out = tmp_path / "out"
+    start = time.monotonic()
+    measured = subprocess.run(
+        [sys.executable, "-c", _MEASURE, str(CONSOLE_SCRIPT), "quantify", str(scans), "--library", str(library), "--out", str(out), "--quiet"],
+        capture_output=True, text=True, timeout=TIME_LIMIT_S + 60,
+    )
+    elapsed = time.monotonic() - start
+    peak_kb, code = (int(word) for word in measured.stdout.split()[-2:])
+    peak = peak_kb * 1024
+    budget = 4 * data_bytes + 300 * 2**20
+    report = f"{N_SCANS} x {n_wavelengths}: {elapsed:.0f} s, peak {peak / 2**20:.0f} MB, budget {budget / 2**20:.0f} MB"
+    print(report)
+    assert code == 0, measured.stderr
+    rows = assert_no_bare_gaps(out / "results.csv")
+    assert len(rows) == 3 * N_SCANS
+    assert [row["scan"] for row in read_rows(out / "fit.csv")] == [f"scan-{i:06d}" for i in range(N_SCANS)]
+    assert elapsed < TIME_LIMIT_S, report
+    assert peak < budget, report
