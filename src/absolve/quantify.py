@@ -45,7 +45,7 @@ from scipy import stats
 from .errors import AbsolveError
 from .library import NoiseModel, ReferenceLibrary
 from .photometry import correct_stray_light
-from .noise import ar1_coefficients, correlated_squared_norms, effective_points, whiten
+from .noise import ar1_coefficients, correlated_squared_norms, correlated_weighted_norms, effective_points, whiten
 from .screening import Screening, _point_patterns as point_patterns, screen_residuals
 from .solver import MAX_CONDITION, solve_nonnegative
 from .spectra import Spectra
@@ -60,7 +60,7 @@ DEFAULT_CEILING = 2.0
 # Variance inflation above 10 marks harmful collinearity (common practice, no source).
 VIF_LIMIT = 10.0
 _COVERAGE_PROBABILITY = 0.9545  # the probability that k = 2 gives for a normal distribution (GUM 6.2.2)
-_CHUNK = 2048  # scans per block of per-point work, bounding memory
+_CHUNK = 1024  # scans per block of per-point work, bounding memory (the covariance step holds some 10 values per point)
 _SCREEN_BLOCK = 2048  # scans per call of the interferent screen (its working arrays are some 20 times the block's values)
 _MIN_SCREEN_POINTS = 10  # fewer wavelengths leave no room for a residual test
 
@@ -601,14 +601,19 @@ class _Job:
         n_comp = self.n_comp
         rows = local + start
         points = group.points
-        targets = self.corrected(self.measured[np.ix_(rows, points)])
+        # Runs of consecutive scans and points (the usual case) are sliced: views, not gathered copies.
+        row_run, point_run, local_run = _run(rows), _run(points), _run(local)
+        targets = self.corrected(self.measured[row_run][:, point_run] if isinstance(row_run, slice) else self.measured[np.ix_(rows, points)])
         coefficients = self.coefficients[rows]
         fitted = coefficients @ group.design.T
         residual = targets - fitted
         out.concentration[local] = coefficients[:, :n_comp]
         out.baseline[local] = coefficients[:, n_comp:]
         out.at_bound[local] = self.at_bound[rows]
-        out.fitted[np.ix_(local, points)] = fitted
+        if isinstance(local_run, slice):
+            out.fitted[local_run, point_run] = fitted
+        else:
+            out.fitted[np.ix_(local, points)] = fitted
         out.rms[local] = np.sqrt(np.mean(residual**2, axis=1))
         noise = self.library.noise
         sigma = noise.standard_deviation(fitted) if noise is not None else np.ones_like(fitted)
@@ -781,6 +786,13 @@ def _figures_of_merit(design: NDArray[np.float64], n_comp: int) -> tuple[NDArray
     return sensitivity, selectivity, 1.0 / selectivity**2
 
 
+def _run(index: NDArray[np.intp]) -> slice | NDArray[np.intp]:
+    """``index`` as a slice when it is a run of consecutive integers, else unchanged."""
+    if index.size and index[-1] - index[0] == index.size - 1:
+        return slice(int(index[0]), int(index[-1]) + 1)
+    return index
+
+
 def _propagate(
     out: _Accumulator,
     rows: NDArray[np.intp],
@@ -829,7 +841,7 @@ def _propagate(
     pinv_free, pinv_all, sums = group.propagation[key]
     # One pass for both sets of rows: the free parameters' and every component's as if free.
     both = np.concatenate([pinv_free, pinv_all[:n_comp]])
-    variance = correlated_squared_norms(both[None, :, :] * sigma[:, None, :], phi)
+    variance = correlated_weighted_norms(both, sigma, phi)
     variance_free, component_variance = variance[:, : pinv_free.shape[0]], variance[:, pinv_free.shape[0] :]
     free_components = np.flatnonzero(free[:n_comp])
     component_variance[:, free_components] = variance_free[:, : free_components.size]
