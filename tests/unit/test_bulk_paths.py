@@ -19,7 +19,7 @@ import pytest
 from absolve import screening
 from absolve.errors import AbsolveError
 from absolve.io import tables
-from absolve.io.results import STREAMED_FILES, fit_csv, results_csv, results_json, spectra_csv, write_results_in_chunks
+from absolve.io.results import STREAMED_FILES, fit_csv, results_csv, results_json, scan_json_lines, spectra_csv, write_results_in_chunks
 from absolve.library import NoiseModel, library_from_absorptivities
 from absolve.noise import ar1_coefficients, correlated_squared_norms
 from absolve.quantify import quantify, quantify_chunks
@@ -144,3 +144,15 @@ def test_streamed_parse_equals_the_text_parse(write_file, text: str) -> None:
     assert streamed[0] == careful[0] and streamed[1:3] == careful[1:3] and streamed[4] == careful[4]
     np.testing.assert_array_equal(streamed[3], careful[3])
     assert tables._stream_parse(write_file("s.csv", "nm,a\n400,0.1\n401,saturated\n"), ".") is None
+
+
+def test_scan_json_lines_are_the_json_of_the_summary_records() -> None:
+    spectra, library = _batch(46, n=60)
+    values = spectra.values.copy()
+    values[5] = np.nan  # a scan with no usable point: NaN numbers become null
+    names = [f'é "{i}"' if i % 9 == 0 else name for i, name in enumerate(spectra.names)]
+    result = quantify(Spectra(GRID, values, names), dataclasses.replace(library, noise=None), baseline="linear", dilution=2.0)
+    assert result.interferent.any() and any(result.scan_flags)
+    # Reference: the json module encoding the records of MixtureResult.summary().
+    assert scan_json_lines(result) == [json.dumps(record, allow_nan=False) for record in result.summary()["scans"]]
+    assert json.loads(results_json(result, {"run": 2}))["scans"] == result.summary()["scans"]
