@@ -226,6 +226,12 @@ CASES = [
     Case("library-missing-grid", with_library(), "wavelengths_nm: missing", "{bad}", make=_edited("library", "wavelengths_nm", ...), bad_name="lib.json"),
     Case("library-unsorted-grid", with_library(), "strictly increasing", "{bad}", make=_edited("library", "wavelengths_nm", lambda v: v[::-1]), bad_name="lib.json"),
     Case("library-unknown-unit", with_library(), "'ppq' is not a known concentration unit", "{bad}", make=_edited("library", "unit", "ppq"), bad_name="lib.json"),
+    Case("library-absurd-absorptivity", with_library(), "beyond any plausible value", "{bad}", make=_edited("library", "components.0.absorptivity.0", 5.6e296), bad_name="lib.json"),
+    Case("library-absurd-noise", with_library(), "noise_model.floor: 1e+300 is beyond any plausible value", "{bad}", make=_edited("library", "noise_model.floor", 1e300), bad_name="lib.json"),
+    Case(
+        "absorptivity-table-absurd", ("calibrate", "--absorptivities", str(TABLES / "absorptivities_absurd.csv"), "--unit", "mg/L", "--out", "{out}"),
+        "absorptivity 1e+300 is beyond any absorber's", "tables/absorptivities_absurd.csv", ":8:3", out="lib.json",
+    ),
     Case("library-pickle", with_library(), "pickle", "{bad}", make=_pickled(pickle.HIGHEST_PROTOCOL), bad_name="lib.json"),
     Case("library-pickle-text-protocol", with_library(), "not valid JSON", "{bad}", make=_pickled(0), bad_name="lib.pkl"),
     Case("library-is-a-model", with_library(), "a PLS model goes to --model", "{bad}", make=_copy("model"), bad_name="model.json"),

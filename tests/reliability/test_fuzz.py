@@ -9,9 +9,12 @@ derandomised profile of tests/conftest.py.
 
 from __future__ import annotations
 
+import contextlib
+import faulthandler
 import itertools
 import json
 import math
+from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
@@ -258,6 +261,20 @@ def _use_model(model: Any) -> None:
 _FILES = {"library": (read_library, _use_library), "model": (read_model, _use_model)}
 
 
+@contextlib.contextmanager
+def _watchdog(seconds: float) -> Iterator[None]:
+    """End the test run with every thread's traceback, instead of hanging it, when the block takes over ``seconds``.
+
+    A library edited to hold 1e296 once sent an SVD of infinities into an endless loop inside LAPACK,
+    where no Python-level signal handler runs; faulthandler's watchdog thread still does.
+    """
+    faulthandler.dump_traceback_later(seconds, exit=True)
+    try:
+        yield
+    finally:
+        faulthandler.cancel_dump_traceback_later()
+
+
 def _read_and_use(kind: str, path: Path) -> None:
     reader, use = _FILES[kind]
     try:
@@ -267,7 +284,8 @@ def _read_and_use(kind: str, path: Path) -> None:
         assert error.file == str(path)
         return
     try:
-        use(loaded)
+        with _watchdog(120.0):
+            use(loaded)
     except AbsolveError:
         event("refused when used")
         return

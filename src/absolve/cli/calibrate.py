@@ -5,13 +5,14 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Annotated, Optional
 
+import numpy as np
 import typer
 
 from ..calibration import calibrate as fit_library
 from ..errors import AbsolveError
 from ..io.files import check_writable, write_all
-from ..io.library_file import library_to_json
-from ..io.tables import concentration_matrix, per_scan_value, read_concentration_table, read_scans, read_wide_table
+from ..io.library_file import MAX_ABSORPTIVITY, library_to_json
+from ..io.tables import WideTable, concentration_matrix, per_scan_value, read_concentration_table, read_scans, read_wide_table
 from ..library import ReferenceLibrary, library_from_absorptivities
 from ..render import library_report
 from ..units import check_unit
@@ -47,6 +48,7 @@ def calibrate(
         if standards is not None or scans:
             raise AbsolveError("--absorptivities builds a library without standards", fix="give either scans with --standards, or --absorptivities")
         table = read_wide_table(absorptivities, decimal=decimal, what="component")
+        _check_plausible(table, absorptivities)
         library = library_from_absorptivities(
             table.grid, table.columns, table.names, unit, molar_masses=masses, provenance=provenance([absorptivities], options)
         )
@@ -78,6 +80,20 @@ def _from_standards(scans, standards, unit, blank, low, high, quantity, decimal,
     except AbsolveError as error:
         # What the standards cannot support (a single level, proportional mixtures) is fixed in the table.
         raise error.located(standards) from None
+
+
+def _check_plausible(table: WideTable, file: Path) -> None:
+    """Refuse absorptivities no absorber has (a unit slip, or a pasted wrong column) with their cell."""
+    magnitude = np.abs(table.columns)
+    if np.nanmax(magnitude, initial=0.0) > MAX_ABSORPTIVITY:
+        column, row = np.unravel_index(int(np.nanargmax(magnitude)), magnitude.shape)
+        raise AbsolveError(
+            f"absorptivity {table.columns[column, row]:g} is beyond any absorber's (at most {MAX_ABSORPTIVITY:g} per unit per cm)",
+            fix="check the table holds absorbance per (unit concentration x 1 cm) in the --unit given",
+            file=file,
+            line=int(table.lines[row]),
+            column=int(column) + 2,
+        )
 
 
 def _parse_masses(items: list[str]) -> dict[str, float]:

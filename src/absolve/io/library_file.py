@@ -31,6 +31,14 @@ __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "library_to_json", "read_library", "
 FORMAT_NAME = "absolve-library"
 FORMAT_VERSION = 1
 
+# Plausibility limits, far beyond any real library, that keep absurd hand-edited numbers out of the
+# linear algebra (where 1e300 overflows and a singular value decomposition of infinities never returns).
+# The strongest absorbers reach a few 1e5 L mol^-1 cm^-1 (from memory), and mol/L gives the largest
+# numbers of the units offered; noise above 10 absorbance units is no measurement; a correlation
+# length of 10 um along wavelength makes neighbouring points identical within round-off.
+MAX_ABSORPTIVITY = 1e7
+_NOISE_LIMITS = {"floor": 10.0, "proportional": 10.0, "correlation_length_nm": 1e4}
+
 _CALIBRATION_FIELDS = (
     "peak_wavelength_nm",
     "levels",
@@ -120,16 +128,18 @@ class _Reader:
             raise self.fail(where + key, "missing")
         return mapping[key]
 
-    def number(self, value: Any, key: str, *, optional: bool = False, positive: bool = False) -> float | None:
+    def number(self, value: Any, key: str, *, optional: bool = False, positive: bool = False, limit: float = math.inf) -> float | None:
         if value is None and optional:
             return None
         if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
             raise self.fail(key, f"expected a finite number, found {value!r}"[:120])
         if positive and value <= 0:
             raise self.fail(key, f"must be positive, found {value!r}")
+        if abs(value) > limit:
+            raise self.fail(key, f"{value!r} is beyond any plausible value (at most {limit:g})")
         return float(value)
 
-    def numbers(self, value: Any, key: str, length: int | None) -> np.ndarray:
+    def numbers(self, value: Any, key: str, length: int | None, *, limit: float = math.inf) -> np.ndarray:
         if not isinstance(value, list):
             raise self.fail(key, "expected a list of numbers")
         if length is not None and len(value) != length:
@@ -140,6 +150,8 @@ class _Reader:
             raise self.fail(key, "holds something that is not a number") from None
         if array.ndim != 1 or not np.all(np.isfinite(array)):
             raise self.fail(key, "must hold finite numbers only")
+        if array.size and np.max(np.abs(array)) > limit:
+            raise self.fail(key, f"holds {np.max(np.abs(array)):g}, beyond any plausible value (at most {limit:g})")
         return array
 
 
@@ -187,8 +199,8 @@ def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
         name = read.get(entry, "name", where)
         if not isinstance(name, str) or not name:
             raise read.fail(where + "name", "expected a non-empty text")
-        absorptivity.append(read.numbers(read.get(entry, "absorptivity", where), where + "absorptivity", grid.size))
-        errors = read.numbers(read.get(entry, "std_error", where), where + "std_error", grid.size)
+        absorptivity.append(read.numbers(read.get(entry, "absorptivity", where), where + "absorptivity", grid.size, limit=MAX_ABSORPTIVITY))
+        errors = read.numbers(read.get(entry, "std_error", where), where + "std_error", grid.size, limit=MAX_ABSORPTIVITY)
         if np.any(errors < 0):
             raise read.fail(where + "std_error", "standard errors cannot be negative")
         std_error.append(errors)
@@ -200,7 +212,7 @@ def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
     noise_doc = document.get("noise_model")
     noise = None
     if noise_doc is not None:
-        values = {key: read.number(read.get(noise_doc, key, "noise_model."), "noise_model." + key) for key in ("floor", "proportional", "correlation_length_nm")}
+        values = {key: read.number(read.get(noise_doc, key, "noise_model."), "noise_model." + key, limit=limit) for key, limit in _NOISE_LIMITS.items()}
         try:
             noise = NoiseModel(**values)  # type: ignore[arg-type]
         except AbsolveError as error:
