@@ -379,9 +379,6 @@ class _Group:
     points: NDArray[np.intp]
     rows: NDArray[np.intp]
     design: NDArray[np.float64] | None = None
-    # Sums for the pooled lag-one correlation of the group's residuals (libraries without a noise model).
-    lag_sum: float = 0.0
-    square_sum: float = 0.0
     phi: NDArray[np.float64] | None = None
     # Pseudo-inverse rows and absorptivity sums per set of free parameters, made once per group.
     propagation: dict[bytes, tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]] = field(default_factory=dict)
@@ -393,8 +390,9 @@ class _Job:
     The preparation finds every scan's used points and fits every scan (a few
     numbers per scan); :meth:`result` then makes the full result of any run
     of consecutive scans, so the batch can be handed out in chunks whose
-    numbers do not depend on the chunking. Per-point arrays are only ever
-    made for blocks of scans.
+    numbers do not depend on the chunking (beyond rounding). Per-point arrays
+    are only ever made for blocks of scans. ``pooled`` gives batch-wide
+    residual sums made elsewhere (the other chunks of a Dask array).
     """
 
     def __init__(
@@ -439,6 +437,7 @@ class _Job:
         return correct_stray_light(values, self.library.stray_light)
 
     def _find_used_points(self) -> None:
+        """Used points of every scan, exclusions counted by reason, and the groups of scans sharing used points."""
         limit = self.library.linear_limit_absorbance
         ceiling = self.options[3]
         n = self.n_scans
@@ -456,7 +455,7 @@ class _Job:
             self.excluded["above_working_range"][block] = above_range.sum(axis=1)
             self.excluded["above_ceiling"][block] = above_ceiling.sum(axis=1)
         self.group_of = np.empty(n, dtype=np.intp)
-        self.groups = []
+        self.groups: list[_Group] = []
         for index, (pattern, rows) in enumerate(point_patterns(self.used)):
             self.group_of[rows] = index
             self.groups.append(_Group(np.flatnonzero(pattern), rows))
