@@ -244,6 +244,7 @@ CASES = [
     Case("model-wrong-length", with_model(), "'x_mean': has shape 20, expected 21", "{bad}", make=_edited("model", "x_mean", lambda v: v[1:]), bad_name="model.json"),
     Case("model-negative-error", with_model(), "'models[1].rmsecv': must be at least 0", "{bad}", make=_edited("model", "models.1.rmsecv", -0.01), bad_name="model.json"),
     Case("model-missing-key", with_model(), "model key 'models': is missing", "{bad}", make=_edited("model", "models", ...), bad_name="model.json"),
+    Case("model-fractional-count", with_model(), "'cross_validation.chosen': must hold whole numbers", "{bad}", make=_edited("model", "cross_validation.chosen.0", 1e300), bad_name="model.json"),
     Case("model-pickle", with_model(), "pickle", "{bad}", make=_pickled(2), bad_name="model.json"),
     Case("model-is-a-library", with_model(), "expected 'absolve-pls-model', found 'absolve-library'", "{bad}", make=_copy("library"), bad_name="lib.json"),
     # ------------------------------------------------------------ JCAMP-DX through convert

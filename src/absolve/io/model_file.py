@@ -190,6 +190,14 @@ class _Checker:
         return array
 
 
+    def counts(self, mapping: Any, key: str, where: str, shape: tuple[int, ...]) -> NDArray[np.int64]:
+        """Like :meth:`array`, for whole numbers below 2^31 in size (counts and indices)."""
+        array = self.array(mapping, key, where, shape)
+        if np.any(array != np.round(array)) or np.any(np.abs(array) >= 2**31):
+            raise self.fail(f"{where}.{key}", "must hold whole numbers")
+        return array.astype(np.int64)
+
+
 def _has_bool(value: Any) -> bool:
     if isinstance(value, list):
         return any(_has_bool(v) for v in value)
@@ -275,11 +283,11 @@ def _model_from_document(document: Any, check: _Checker) -> InverseModel:
     cv_doc = check.get(document, "cross_validation")
     curve = check.array(cv_doc, "rmsecv", "cross_validation", (len(components), -1))
     width = curve.shape[1]
-    chosen = check.array(cv_doc, "chosen", "cross_validation", (len(components),)).astype(np.int64)
+    chosen = check.counts(cv_doc, "chosen", "cross_validation", (len(components),))
     if chosen.tolist() != [m.latent_variables for m in component_models]:
         raise check.fail("cross_validation.chosen", "does not match the models' latent_variables")
     folds = int(check.number(cv_doc, "folds", "cross_validation", integer=True, minimum=2))
-    fold_of_scan = check.array(cv_doc, "fold_of_scan", "cross_validation", (n_train,)).astype(np.int64)
+    fold_of_scan = check.counts(cv_doc, "fold_of_scan", "cross_validation", (n_train,))
     if fold_of_scan.size and (fold_of_scan.min() < 0 or fold_of_scan.max() >= folds):
         raise check.fail("cross_validation.fold_of_scan", f"must hold fold numbers 0 to {folds - 1}")
     cross_validation = CrossValidation(
