@@ -481,7 +481,15 @@ class _Job:
                 self.failed[rows] = True
                 continue
             design = self.design[group.points]
-            scaled = design / np.linalg.norm(design, axis=0)
+            norms = np.linalg.norm(design, axis=0)
+            if np.any(norms[:n_comp] == 0):
+                silent = self.library.names[int(np.flatnonzero(norms[:n_comp] == 0)[0])]
+                low, high = self.grid[group.points[0]], self.grid[group.points[-1]]
+                raise AbsolveError(
+                    f"component {silent!r} has no absorptivity at the used wavelengths ({low:g}-{high:g} nm)",
+                    fix="widen --range to where it absorbs, or use a library without it",
+                )
+            scaled = design / norms
             self.condition[rows] = float(np.linalg.cond(scaled))
             self.sensitivity[rows], self.selectivity[rows], self.vif[rows] = _figures_of_merit(design, n_comp)
             # Beyond the solver's limit the numbers are not worth reporting: a flagged gap, not an error for the whole batch.
@@ -829,8 +837,9 @@ def _propagate(
     else:
         out.p_value[rows] = np.nan
         uses_scan_scale = np.ones(len(rows), dtype=bool)
-        if dof == 0:
-            out.no_model_no_dof[rows] = True
+        # Without a noise model the scan's own residual is the only evidence of noise: none left
+        # over (no degrees of freedom, or an exactly zero residual) means no uncertainty can be given.
+        out.no_model_no_dof[rows] = (dof == 0) | (scale <= 0.0)
     out.noise_scale[rows] = scale
     # Every component gets an uncertainty: one held at the bound gets the one it would have if free.
     key = free.tobytes()
@@ -845,8 +854,8 @@ def _propagate(
     free_components = np.flatnonzero(free[:n_comp])
     component_variance[:, free_components] = variance_free[:, : free_components.size]
     noise_sd = np.sqrt(component_variance * scale[:, None])
-    if not have_model and dof == 0:
-        noise_sd[:] = np.nan
+    if not have_model:
+        noise_sd[out.no_model_no_dof[rows]] = np.nan
     out.budget["spectral_noise"][rows] = noise_sd
     out.noise_dof[rows] = np.where(uses_scan_scale[:, None], noise_dof, np.inf)
     out.budget["absorptivity"][rows] = np.sqrt(concentration**2 @ sums.T)

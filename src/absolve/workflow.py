@@ -9,7 +9,7 @@ file atomically) only when everything has succeeded.
 from __future__ import annotations
 
 import json
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, get_args
@@ -21,7 +21,7 @@ from .inverse import InverseModel, InversePrediction
 from .io.files import check_writable, write_all
 from .io.library_file import read_library
 from .io.model_file import read_model
-from .io.results import fit_csv, prediction_fit_csv, prediction_results_csv, results_csv, results_json, spectra_csv
+from .io.results import fit_csv, prediction_fit_csv, prediction_results_csv, results_csv, results_json, spectra_csv_lines
 from .io.tables import read_scans
 from .quantify import MixtureResult, quantify
 from .report.figures import FigureFormat, render_figures
@@ -71,8 +71,12 @@ class QuantifyOutcome:
 
     result: MixtureResult | InversePrediction
     text: str
-    json_text: str
     written: tuple[Path, ...]
+
+    @property
+    def json_text(self) -> str:
+        """The result's summary as JSON (built on demand: it is costly for large batches)."""
+        return json.dumps(self.result.summary(), indent=1, allow_nan=False)
 
 
 def _options(request: QuantifyRequest) -> dict[str, Any]:
@@ -145,11 +149,11 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
         result, library, detail=request.detail, file_format=file_format, progress=lambda done, total: progress("drawing figures", done, total)
     )
     progress("preparing result files", 0, 0)
-    files: dict[Path, str | bytes] = {
+    files: dict[Path, str | bytes | Iterable[str]] = {
         targets[0]: results_csv(result),
         targets[1]: fit_csv(result),
-        targets[2]: spectra_csv(result, "fitted"),
-        targets[3]: spectra_csv(result, "residuals"),
+        targets[2]: spectra_csv_lines(result, "fitted"),
+        targets[3]: spectra_csv_lines(result, "residuals"),
         targets[4]: results_json(result, record, None if prediction is None else {"pls": prediction.summary()}),
         targets[5]: build_report(result, library, record, figures=figures, sections=request.extra_sections, prediction=prediction),
     }
@@ -160,7 +164,7 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
     saved = f" and {len(figures)} figures in {folder}/" if file_format is not None else ""
     text = result.report() + (_agreement(result, prediction) if prediction is not None else "")
     text += f"\nresults written to {request.out}/ ({', '.join(RESULT_FILES)}){saved}"
-    return QuantifyOutcome(result, text, json.dumps(result.summary(), indent=1, allow_nan=False), tuple(files))
+    return QuantifyOutcome(result, text, tuple(files))
 
 
 def _predict(model: InverseModel, spectra: Spectra, request: QuantifyRequest) -> InversePrediction:
@@ -216,4 +220,4 @@ def _run_model(request: QuantifyRequest, targets: list[Path]) -> QuantifyOutcome
     }
     write_all(files, force=request.force)
     text = prediction.report() + f"\nresults written to {request.out}/ ({', '.join(p.name for p in files)})"
-    return QuantifyOutcome(prediction, text, json.dumps(prediction.summary(), indent=1, allow_nan=False), tuple(files))
+    return QuantifyOutcome(prediction, text, tuple(files))

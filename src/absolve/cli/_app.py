@@ -77,4 +77,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         return 130
     except BrokenPipeError:
         return 0
+    if result == 130:  # typer turns Ctrl-C inside a command into exit status 130
+        print("error: interrupted — nothing was written", file=sys.stderr)
+        return 130
     return int(result) if isinstance(result, int) else 0
