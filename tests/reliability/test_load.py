@@ -33,17 +33,16 @@ _MEASURE = (
     "code = subprocess.run(sys.argv[1:]).returncode\n"
     "print(resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss, code)\n"
 )
-# Measured 2026-12-02 on the 2-core test machine (shared), before quantify and the writers were chunked:
-#   100,000 x 50 wavelengths (40 MB of float64): 63 s, peak 2.8 GB against a budget of 460 MB;
-#   100,000 x 371 wavelengths (297 MB): 155 s, peak 4.3 GB against a budget of 1.5 GB.
-# In-process stages for 371 wavelengths (peak so far): reading 0.7 GB, quantify 1.2 GB (53 s), fitted and
-# residual tables +0.7 GB of text, results.json +0.7 GB (every scan a Python dict, then one string); the
-# command line then dumps result.summary() to JSON once more for --json, asked for or not.
+# Measured 2026-12-02 on the 2-core test machine (shared with other runs):
+#   before the chunked writers: 100,000 x 50 wavelengths (40 MB of float64) 63 s, peak 2.8 GB (budget 460 MB);
+#                               100,000 x 371 (297 MB) 155 s, peak 4.3 GB (budget 1.5 GB). In-process stages for
+#                               371: reading 0.7 GB, quantify 1.2 GB, fitted/residual text +0.7 GB, results.json
+#                               +0.7 GB (a Python dict per scan), then the summary dumped once more for --json;
+#   with them (later that day): x 50: 25 s, peak 1.36 GB; x 371: 67 s, peak 2.17 GB.
 OVER_BUDGET = pytest.mark.xfail(
     strict=False,
-    reason="peak memory about 3-6x the budget (4.3 GB for 100,000 x 371 wavelengths, budget 1.5 GB; 2.8 GB for x 50, "
-    "budget 460 MB): result tables and results.json are built whole in memory; waiting for chunked quantify and "
-    "streamed writers (absolve.io.files.write_all accepts chunk iterables)",
+    reason="peak memory above the budget (2.17 GB for 100,000 x 371 wavelengths against 1.43 GB; 1.36 GB for x 50 "
+    "against 0.45 GB, measured 2026-12-02): waiting for quantify and its writers to work in bounded chunks end to end",
 )
 
 
