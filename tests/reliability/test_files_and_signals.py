@@ -177,9 +177,9 @@ def _startup_seconds() -> float:
 @pytest.mark.skipif(not CONSOLE_SCRIPT.exists(), reason=f"no installed console script at {CONSOLE_SCRIPT}")
 @pytest.mark.skipif(sys.platform == "win32", reason="SIGINT to a child process is a POSIX signal")
 def test_sigint_part_way_through_quantify_exits_130_and_leaves_nothing(tmp_path: Path) -> None:
-    scans, library = _large_input(tmp_path, 30_000)
+    scans, library = _large_input(tmp_path, 60_000)
     out = tmp_path / "out"
-    # Signal once the program is past its imports and busy with the scans (about 10 s of work here).
+    # Signal once the program is past its imports and busy with the scans (15 s or more of work here).
     delay = _startup_seconds() + 1.0
     child = subprocess.Popen(
         [str(CONSOLE_SCRIPT), "quantify", str(scans), "--library", str(library), "--out", str(out)],
