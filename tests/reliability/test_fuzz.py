@@ -367,9 +367,12 @@ def _check_result(result: MixtureResult) -> None:
 @FUZZ
 def test_quantify_on_random_libraries_and_scans(n_wl: int, n_comp: int, data: st.DataObject, baseline: str, identical: bool) -> None:
     grid = np.arange(n_wl, dtype=np.float64) * data.draw(st.sampled_from([0.5, 1.0, 10.0])) + 400.0
-    # Strictly positive: a component without signal on the fitted points is a known crash, tested on its own
-    # in test_numerical_guards.py (xfail until quantify refuses or flags it).
-    absorptivity = data.draw(hnp.arrays(np.float64, (n_comp, n_wl), elements=st.one_of(st.floats(1e-3, 2), st.floats(1e-3, 1e9))))
+    # Zeros included: a component without signal on the fitted points must be refused or flagged, not crash.
+    absorptivity = data.draw(
+        hnp.arrays(np.float64, (n_comp, n_wl), elements=st.one_of(st.floats(1e-3, 2), st.floats(1e-3, 1e7), st.just(0.0)), fill=st.nothing())
+    )
+    if data.draw(st.booleans()):
+        absorptivity[-1, : data.draw(st.integers(1, n_wl))] = 0.0  # no signal over part of the grid (or all of it)
     if identical and n_comp > 1:
         absorptivity[1] = absorptivity[0]
     values = data.draw(
