@@ -347,6 +347,10 @@ def _check_options(baseline: str, path_length: float, dilution: float, ceiling: 
             raise AbsolveError(f"the {name} must be a positive number; got {value!r}", fix=f"give the {name} as a number above 0")
     if dilution < 1:
         raise AbsolveError(f"the dilution factor must be >= 1; got {dilution!r}", fix="give how many times the sample was diluted (1 = not diluted)")
+    # Beyond these no cell or dilution scheme exists; such a number is a typo (common practice, no source).
+    for name, value, top, unit in (("path length", path_length, 100.0, " cm"), ("dilution", dilution, 1e7, "")):
+        if value > top:
+            raise AbsolveError(f"the {name} {value:g}{unit} is implausibly large", fix=f"check the {name} (at most {top:g}{unit})")
     for name, value in (("path-length tolerance", tol_b), ("dilution tolerance", tol_d)):
         if not (np.isfinite(value) and 0 <= value < 0.5):
             raise AbsolveError(f"the {name} must be a relative standard uncertainty in [0, 0.5); got {value!r}", fix="e.g. 0.002 for 0.2 %")

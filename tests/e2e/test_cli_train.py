@@ -57,7 +57,7 @@ def test_train_writes_a_model_and_prints_the_rmsecv_curve(
     # Training scans measured at 0.5 cm are put on a per-cm footing: they predict their own cell concentration.
     assert max(m.rmsecv for m in model.component_models_) < 0.05 * np.ptp(cell)
     inputs = [entry["file"] for entry in model.provenance_["inputs"]]
-    assert inputs == [str(scans), str(table)]
+    assert inputs == [scans.name, table.name]  # names only: the file does not depend on where it was made
 
 
 def test_existing_model_is_kept_without_force(training_files: tuple[Path, Path, np.ndarray, np.ndarray], tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

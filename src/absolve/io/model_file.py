@@ -76,7 +76,7 @@ def model_to_json(model: InverseModel, *, inputs: Sequence[str | os.PathLike[str
         "created": datetime.now(UTC).isoformat(timespec="seconds"),
         "tool": "absolve",
         "tool_version": __version__,
-        "inputs": [{"file": str(path), "sha256": file_sha256(path)} for path in inputs],
+        "inputs": [{"file": Path(path).name, "sha256": file_sha256(path)} for path in inputs],
         "training_source": model.provenance_.get("training_source"),
     }
     cv, check = model.cv_, model.diagnostics_
