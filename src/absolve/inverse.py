@@ -691,9 +691,11 @@ class InverseModel:
         )
         rmsecv = np.array([m.rmsecv for m in self.component_models_])
         check = self.diagnostics_
-        scores = centred @ check.loadings
-        t2 = (scores**2 / check.eigenvalues).sum(axis=1)
-        q = ((centred - scores @ check.loadings.T) ** 2).sum(axis=1)
+        # A hand-edited model can overflow here; the non-finite results are flagged below, not warned about.
+        with np.errstate(over="ignore", invalid="ignore"):
+            scores = centred @ check.loadings
+            t2 = (scores**2 / check.eigenvalues).sum(axis=1)
+            q = ((centred - scores @ check.loadings.T) ** 2).sum(axis=1)
         low = np.array([m.training_range[0] for m in self.component_models_])
         high = np.array([m.training_range[1] for m in self.component_models_])
         with np.errstate(invalid="ignore"):
