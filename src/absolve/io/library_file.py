@@ -23,8 +23,8 @@ import numpy as np
 
 from ..errors import AbsolveError
 from ..library import ComponentCalibration, NoiseModel, ReferenceLibrary
-from .files import atomic_write, refuse_pickle
-from .tables import read_text
+from .files import atomic_write
+from .json_document import load_json_document
 
 __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "library_to_json", "read_library", "write_library"]
 
@@ -158,20 +158,7 @@ class _Reader:
 def read_library(path: str | os.PathLike[str]) -> ReferenceLibrary:
     """Read and validate a library file written by :func:`write_library`."""
     file = Path(path)
-    refuse_pickle(file, fix="pass a library JSON file written by 'absolve calibrate'")
-    text = read_text(file, expected="a library file", fix="pass a library JSON file written by 'absolve calibrate'")
-    try:
-        document = json.loads(text)
-    except RecursionError:
-        raise AbsolveError("nested too deeply to be a library", fix="pass a file written by 'absolve calibrate'", file=file) from None
-    except json.JSONDecodeError as error:
-        raise AbsolveError(
-            f"not valid JSON ({error.msg})",
-            fix="the file is truncated or not a library; rebuild it with 'absolve calibrate'",
-            file=file,
-            line=error.lineno,
-            column=error.colno,
-        ) from None
+    document = load_json_document(file, what="library file", maker="absolve calibrate")
     read = _Reader(file)
     if not isinstance(document, dict) or document.get("format") != FORMAT_NAME:
         found = document.get("format") if isinstance(document, dict) else type(document).__name__

@@ -43,8 +43,8 @@ from .. import __version__
 from ..errors import AbsolveError
 from ..inverse import ComponentModel, CrossValidation, InverseModel, SpectralCheck
 from ..units import check_unit
-from .files import atomic_write, file_sha256, refuse_pickle
-from .tables import read_text
+from .files import atomic_write, file_sha256
+from .json_document import load_json_document
 
 __all__ = ["FORMAT", "VERSION", "model_to_json", "read_model", "write_model"]
 
@@ -215,20 +215,7 @@ def read_model(path: str | os.PathLike[str]) -> InverseModel:
         non-finite number; the message names the file and the key.
     """
     file = str(path)
-    refuse_pickle(path, fix="pass a model JSON file written by 'absolve train'")
-    text = read_text(Path(path), expected="a model file", fix="pass a model JSON file written by 'absolve train'")
-    try:
-        document = json.loads(text)
-    except RecursionError:
-        raise AbsolveError("nested too deeply to be a model file", fix="give a model file written by 'absolve train'", file=file) from None
-    except json.JSONDecodeError as error:
-        raise AbsolveError(
-            f"not valid JSON ({error.msg})",
-            fix="the file is truncated or damaged; write it again with 'absolve train'",
-            file=file,
-            line=error.lineno,
-            column=error.colno,
-        ) from None
+    document = load_json_document(path, what="model file", maker="absolve train")
     return _model_from_document(document, _Checker(file))
 
 
