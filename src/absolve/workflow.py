@@ -121,11 +121,8 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
         return _run_model(request, targets)
     progress("reading", 0, 0)
     library = read_library(request.library)
-    spectra = read_scans(request.scans, decimal=request.decimal, quantity=request.quantity)  # type: ignore[arg-type]
-    inputs: list[Path] = [*request.scans, request.library]
-    if request.blank is not None:
-        spectra = spectra.subtract_blank(read_scans([request.blank], decimal=request.decimal, quantity=request.quantity))  # type: ignore[arg-type]
-        inputs.append(request.blank)
+    spectra, inputs = _read_samples(request)
+    inputs.append(request.library)
     progress(f"fitting {spectra.values.shape[0]} scans", 0, 0)
     result = quantify(
         spectra,
@@ -167,6 +164,16 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
     return QuantifyOutcome(result, text, tuple(files))
 
 
+def _read_samples(request: QuantifyRequest) -> tuple[Spectra, list[Path]]:
+    """The sample scans (blank subtracted when one is given) and the input files read for them."""
+    spectra = read_scans(request.scans, decimal=request.decimal, quantity=request.quantity)  # type: ignore[arg-type]
+    inputs: list[Path] = list(request.scans)
+    if request.blank is not None:
+        spectra = spectra.subtract_blank(read_scans([request.blank], decimal=request.decimal, quantity=request.quantity))  # type: ignore[arg-type]
+        inputs.append(request.blank)
+    return spectra, inputs
+
+
 def _predict(model: InverseModel, spectra: Spectra, request: QuantifyRequest) -> InversePrediction:
     """PLS predictions of ``spectra``, corrected for dilution."""
     prediction = model.predict(spectra, path_length_cm=request.path_length)
@@ -203,11 +210,8 @@ def _run_model(request: QuantifyRequest, targets: list[Path]) -> QuantifyOutcome
 
     assert request.model is not None
     model = read_model(request.model)
-    spectra = read_scans(request.scans, decimal=request.decimal, quantity=request.quantity)  # type: ignore[arg-type]
-    inputs: list[Path] = [*request.scans, request.model]
-    if request.blank is not None:
-        spectra = spectra.subtract_blank(read_scans([request.blank], decimal=request.decimal, quantity=request.quantity))  # type: ignore[arg-type]
-        inputs.append(request.blank)
+    spectra, inputs = _read_samples(request)
+    inputs.append(request.model)
     prediction = _predict(model, spectra, request)
     record = provenance(inputs, _options(request))
     n_points = int(model.wavelengths_.size)
