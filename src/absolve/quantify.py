@@ -34,7 +34,7 @@ many degrees of freedom and larger for few.
 from __future__ import annotations
 
 import dataclasses
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Literal, get_args
 
@@ -50,7 +50,7 @@ from .screening import Screening, _point_patterns as point_patterns, screen_resi
 from .solver import MAX_CONDITION, solve_nonnegative
 from .spectra import Spectra
 
-__all__ = ["Baseline", "BASELINES", "MixtureResult", "baseline_columns", "quantify", "quantify_chunks", "DEFAULT_CEILING"]
+__all__ = ["Baseline", "BASELINES", "MixtureResult", "baseline_columns", "concatenate_results", "quantify", "quantify_chunks", "DEFAULT_CEILING"]
 
 Baseline = Literal["none", "offset", "linear"]
 BASELINES: tuple[str, ...] = get_args(Baseline)
@@ -96,8 +96,10 @@ class MixtureResult:
         share of the pure absorptivity norm, and 1 / selectivity^2 (Lorber 1986;
         Olivieri et al., Pure Appl. Chem. 78 (2006) 633).
     baseline : ndarray, shape (n_scans, n_baseline_terms)
-    fitted, residuals : ndarray, shape (n_scans, n_wavelengths)
-        NaN where a point was not used.
+    fitted, residuals : ndarray, shape (n_scans, n_wavelengths), or None
+        NaN where a point was not used. None in a batch record gathered chunk by
+        chunk without them (see :meth:`without_spectra`), which keeps a large
+        batch's record a small multiple of its per-scan numbers.
     used : ndarray of bool, shape (n_scans, n_wavelengths)
     rms_residual, condition_number, residual_dof, noise_scale, residual_p_value : ndarray, shape (n_scans,)
     excluded : dict of str to ndarray
@@ -132,8 +134,8 @@ class MixtureResult:
     selectivity: NDArray[np.float64]
     variance_inflation: NDArray[np.float64]
     baseline: NDArray[np.float64]
-    fitted: NDArray[np.float64]
-    residuals: NDArray[np.float64]
+    fitted: NDArray[np.float64] | None
+    residuals: NDArray[np.float64] | None
     used: NDArray[np.bool_]
     rms_residual: NDArray[np.float64]
     condition_number: NDArray[np.float64]
@@ -205,6 +207,15 @@ class MixtureResult:
             )
         return {"unit": self.unit, "components": list(self.components), "settings": dict(self.settings), "scans": scans}
 
+    def take(self, rows: Sequence[int] | NDArray[np.intp]) -> MixtureResult:
+        """The result of the scans ``rows`` (indices into this batch, in the order given)."""
+        index = np.asarray(rows, dtype=np.intp).reshape(-1)
+        return _take(self, index, _BATCH_FIELDS)
+
+    def without_spectra(self) -> MixtureResult:
+        """This result without its fitted and residual spectra (every per-scan number stays)."""
+        return dataclasses.replace(self, fitted=None, residuals=None)
+
     def report(self) -> str:
         """Compact text table: concentration +/- expanded uncertainty per component and scan, with flags."""
         from .render import mixture_report
@@ -223,6 +234,58 @@ FLAG_TEXT: dict[str, str] = {
     "no-uncertainty": "no uncertainty can be estimated: no residual degrees of freedom and no noise model in the library",
     "too-few-points": "fewer usable points than unknowns: no result for this scan",
 }
+
+
+# Fields that describe the whole batch; every other field holds one entry per scan.
+_BATCH_FIELDS = frozenset({"components", "unit", "wavelengths", "settings"})
+_SCREENING_BATCH_FIELDS = frozenset({"alpha", "method"})
+
+
+def _take(record: Any, rows: NDArray[np.intp], batch_fields: frozenset[str]) -> Any:
+    """A copy of a per-scan record (MixtureResult or Screening) holding only ``rows``."""
+    values = {item.name: _take_entries(getattr(record, item.name), rows) for item in dataclasses.fields(record) if item.name not in batch_fields}
+    return dataclasses.replace(record, **values)
+
+
+def _take_entries(value: Any, rows: NDArray[np.intp]) -> Any:
+    if value is None:
+        return None
+    if isinstance(value, np.ndarray):
+        return value[rows]
+    if isinstance(value, tuple):
+        return tuple(value[i] for i in rows.tolist())
+    if isinstance(value, Screening):
+        return _take(value, rows, _SCREENING_BATCH_FIELDS)
+    return {key: entry[rows] for key, entry in value.items()}
+
+
+def concatenate_results(parts: Sequence[MixtureResult]) -> MixtureResult:
+    """One result from the results of consecutive runs of scans of one batch (e.g. the chunks of :func:`quantify_chunks`).
+
+    Whole-batch fields (components, unit, wavelengths, settings) are taken from
+    the first part; fitted and residual spectra are joined only when every part has them.
+    """
+    if not parts:
+        raise AbsolveError("no results to join", fix="give at least one result")
+    return _join(parts, _BATCH_FIELDS)
+
+
+def _join(parts: Sequence[Any], batch_fields: frozenset[str]) -> Any:
+    values = {item.name: _join_entries([getattr(part, item.name) for part in parts]) for item in dataclasses.fields(parts[0]) if item.name not in batch_fields}
+    return dataclasses.replace(parts[0], **values)
+
+
+def _join_entries(entries: list[Any]) -> Any:
+    first = entries[0]
+    if any(entry is None for entry in entries):
+        return None
+    if isinstance(first, np.ndarray):
+        return np.concatenate(entries)
+    if isinstance(first, tuple):
+        return tuple(item for entry in entries for item in entry)
+    if isinstance(first, Screening):
+        return _join(entries, _SCREENING_BATCH_FIELDS)
+    return {key: np.concatenate([entry[key] for entry in entries]) for key in first}
 
 
 def _json_rows(values: NDArray[Any]) -> list[Any]:

@@ -2,14 +2,15 @@
 
 The command line calls one function here per verb; the functions take paths
 and options and return the texts to show, so they are testable without a
-terminal. All outputs are prepared in memory first and written together (each
-file atomically) only when everything has succeeded.
+terminal. Outputs go to temporary files first and are renamed into place together
+only when everything has succeeded; large batches are fitted and written
+chunk by chunk, so only one chunk's spectra are held at a time.
 """
 
 from __future__ import annotations
 
 import json
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, get_args
@@ -18,12 +19,13 @@ import numpy as np
 
 from .errors import AbsolveError
 from .inverse import InverseModel, InversePrediction
-from .io.files import check_writable, write_all
+from .io.files import Content, check_writable, write_all
 from .io.library_file import read_library
 from .io.model_file import read_model
-from .io.results import fit_csv, prediction_fit_csv, prediction_results_csv, results_csv, results_json, spectra_csv_lines
+from .io.results import prediction_fit_csv, prediction_results_csv, write_results_in_chunks
 from .io.tables import read_scans
-from .quantify import MixtureResult, quantify
+from .quantify import MixtureResult, quantify_chunks
+from .report.batch import ReportBatch
 from .report.figures import FigureFormat, render_figures
 from .report.html import build_report
 from .spectra import Spectra
@@ -32,6 +34,7 @@ __all__ = ["FIGURE_FOLDER", "Progress", "QuantifyRequest", "QuantifyOutcome", "r
 
 RESULT_FILES = ("results.csv", "fit.csv", "fitted.csv", "residuals.csv", "results.json", "report.html")
 FIGURE_FOLDER = "figures"
+CHUNK_SCANS = 4096  # scans fitted, written and let go at a time: a few tens of MB of spectra
 
 Progress = Callable[[str, int, int], None]
 """Told ``(stage, done, total)`` as a run goes on (``total`` 0 when a step cannot count)."""
@@ -123,10 +126,18 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
     library = read_library(request.library)
     spectra, inputs = _read_samples(request)
     inputs.append(request.library)
-    progress(f"fitting {spectra.values.shape[0]} scans", 0, 0)
-    result = quantify(
+    n_scans = spectra.values.shape[0]
+    prediction = None
+    if request.model is not None:
+        # Both a library and a PLS model: the library's results lead, the model's are compared with them.
+        progress("predicting with the PLS model", 0, 0)
+        prediction = _predict(read_model(request.model), spectra, request)
+        inputs.append(request.model)
+    record = provenance(inputs, _options(request))
+    chunks = quantify_chunks(
         spectra,
         library,
+        chunk_scans=CHUNK_SCANS,
         baseline=request.baseline,  # type: ignore[arg-type]
         wavelength_range=request.wavelength_range,
         path_length=request.path_length,
@@ -135,33 +146,36 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
         path_length_tolerance=request.path_length_tolerance,
         dilution_tolerance=request.dilution_tolerance,
     )
-    prediction = None
-    if request.model is not None:
-        # Both a library and a PLS model: the library's results lead, the model's are compared with them.
-        progress("predicting with the PLS model", 0, 0)
-        prediction = _predict(read_model(request.model), spectra, request)
-        inputs.append(request.model)
-    record = provenance(inputs, _options(request))
-    figures = render_figures(
-        result, library, detail=request.detail, file_format=file_format, progress=lambda done, total: progress("drawing figures", done, total)
-    )
-    progress("preparing result files", 0, 0)
-    files: dict[Path, str | bytes | Iterable[str]] = {
-        targets[0]: results_csv(result),
-        targets[1]: fit_csv(result),
-        targets[2]: spectra_csv_lines(result, "fitted"),
-        targets[3]: spectra_csv_lines(result, "residuals"),
-        targets[4]: results_json(result, record, None if prediction is None else {"pls": prediction.summary()}),
-        targets[5]: build_report(result, library, record, figures=figures, sections=request.extra_sections, prediction=prediction),
-    }
-    folder = request.out / FIGURE_FOLDER
-    files.update({folder / f"{figure.key}.{file_format}": figure.file for figure in figures if figure.file is not None})
-    progress("writing files", 0, 0)
-    write_all(files, force=request.force)
-    saved = f" and {len(figures)} figures in {folder}/" if file_format is not None else ""
+    # Each chunk is written as it comes and leaves only its per-scan numbers and the
+    # scans the report draws, so memory stays bounded whatever the batch size.
+    batch = ReportBatch(library, request.detail)
+
+    def gathered() -> Iterator[MixtureResult]:
+        progress("fitting", 0, n_scans)
+        for chunk in chunks:
+            batch.add(chunk)
+            progress("fitting", batch.n_scans, n_scans)
+            yield chunk
+
+    figure_folder = request.out / FIGURE_FOLDER
+    figure_files: list[Path] = []
+
+    def report_files() -> dict[Path, Content]:
+        figures = render_figures(batch, library, file_format=file_format, progress=lambda done, total: progress("drawing figures", done, total))
+        progress("writing files", 0, 0)
+        files: dict[Path, Content] = {targets[5]: build_report(batch.result, library, record, figures=figures, sections=request.extra_sections, prediction=prediction)}
+        figure_files.extend(figure_folder / f"{figure.key}.{file_format}" for figure in figures if figure.file is not None)
+        files.update(zip(figure_files, (figure.file for figure in figures if figure.file is not None)))
+        return files
+
+    streamed = {name: request.out / name for name in RESULT_FILES if name != "report.html"}
+    json_extra = None if prediction is None else {"pls": prediction.summary()}
+    write_results_in_chunks(gathered(), streamed, provenance=record, force=request.force, json_extra=json_extra, finish=report_files)
+    result = batch.result
+    saved = f" and {len(figure_files)} figures in {figure_folder}/" if file_format is not None else ""
     text = result.report() + (_agreement(result, prediction) if prediction is not None else "")
     text += f"\nresults written to {request.out}/ ({', '.join(RESULT_FILES)}){saved}"
-    return QuantifyOutcome(result, text, tuple(files))
+    return QuantifyOutcome(result, text, (*streamed.values(), targets[5], *figure_files))
 
 
 def _read_samples(request: QuantifyRequest) -> tuple[Spectra, list[Path]]:

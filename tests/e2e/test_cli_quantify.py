@@ -192,3 +192,42 @@ def test_fitted_and_residual_tables_read_back_as_scan_tables_on_a_fine_grid(tmp_
         back = read_scan_table(path)
         assert np.array_equal(back.wavelengths, grid)
         np.testing.assert_allclose(back.values, expected, atol=5e-7)
+
+
+def test_a_batch_written_in_chunks_gives_the_same_files_as_one_chunk(inputs: Inputs, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from absolve import workflow
+
+    argv = [str(inputs.samples), "--library", str(inputs.library), "--detail", "1", "--figures", "svg"]
+    assert main(["quantify", *argv, "--out", str(tmp_path / "whole")]) == 0
+    monkeypatch.setattr(workflow, "CHUNK_SCANS", 1)
+    assert main(["quantify", *argv, "--out", str(tmp_path / "chunked")]) == 0
+    whole = sorted(path.relative_to(tmp_path / "whole") for path in (tmp_path / "whole").rglob("*") if path.is_file())
+    assert whole == sorted(path.relative_to(tmp_path / "chunked") for path in (tmp_path / "chunked").rglob("*") if path.is_file())
+    assert len(whole) == len(RESULT_FILES) + 4  # figures: library, overview, residual sizes, the first scan (none is flagged)
+    for name in whole:
+        first, second = (_comparable((tmp_path / folder / name).read_text(encoding="utf-8")) for folder in ("whole", "chunked"))
+        if name.name == "results.json":
+            # Every digit is written here, and chunks agree with the whole batch to rounding (quantify_chunks).
+            (shape_a, numbers_a), (shape_b, numbers_b) = _split_numbers(json.loads(first)), _split_numbers(json.loads(second))
+            assert shape_a == shape_b
+            np.testing.assert_allclose(numbers_a, numbers_b, rtol=1e-9)
+        else:
+            assert first == second, name
+
+
+def _split_numbers(value: object) -> tuple[object, list[float]]:
+    """A JSON value with each float replaced by 0.0, and the floats in order."""
+    if isinstance(value, float):
+        return 0.0, [value]
+    if isinstance(value, dict):
+        parts = {key: _split_numbers(item) for key, item in value.items()}
+        return {key: part[0] for key, part in parts.items()}, [x for part in parts.values() for x in part[1]]
+    if isinstance(value, list):
+        pieces = [_split_numbers(item) for item in value]
+        return [piece[0] for piece in pieces], [x for piece in pieces for x in piece[1]]
+    return value, []
+
+
+def _comparable(text: str) -> str:
+    """The text without time stamps and SVG clip-path ids (hashes of axes limits, which chunking can move by a rounding error)."""
+    return re.sub(r'(clip-path="url\(#|clipPath id=")p[0-9a-f]+', r"\1p", TIME_STAMP.sub("T", text))

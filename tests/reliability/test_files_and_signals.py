@@ -21,7 +21,7 @@ import numpy as np
 import pytest
 
 from _reliability import CONSOLE_SCRIPT, GOOD, one_error_line, run, snapshot, write_large_scan_table
-from absolve.io import files
+from absolve.io import files, results
 from absolve.simulate import Instrument, measure, random_absorptivities
 from absolve.workflow import RESULT_FILES
 
@@ -47,8 +47,8 @@ COMMANDS = ["quantify", "quantify-model", "calibrate", "train", "convert", "chec
 class _BrokenStream:
     """A file writer that writes the first half of the data it is given, then fails like ``failure``."""
 
-    def __init__(self, handle: int, failure: BaseException) -> None:
-        self.stream = os.fdopen(handle, "wb")
+    def __init__(self, stream: Any, failure: BaseException) -> None:
+        self.stream = stream
         self.failure = failure
 
     def __enter__(self) -> _BrokenStream:
@@ -57,24 +57,37 @@ class _BrokenStream:
     def __exit__(self, *exc: object) -> None:
         self.stream.close()
 
-    def write(self, data: bytes) -> None:
+    def close(self) -> None:
+        self.stream.close()
+
+    def write(self, data: Any) -> None:
         self.stream.write(data[: len(data) // 2])
         self.stream.flush()
         raise self.failure
 
 
-def _break_writing(monkeypatch: pytest.MonkeyPatch, failure: BaseException, at: int) -> list[int]:
-    """Make the ``at``-th file absolve opens for writing fail half-way; returns the list of opened handles."""
-    real_fdopen = os.fdopen
-    opened: list[int] = []
+def _break_writing(monkeypatch: pytest.MonkeyPatch, failure: BaseException, at: int) -> list[object]:
+    """Make the ``at``-th file absolve opens for writing fail half-way; returns the list of files opened.
+
+    Files are opened by the all-or-nothing writer (``absolve.io.files``) and by
+    the chunked result writer (``absolve.io.results``); both are counted.
+    """
+    real_fdopen, real_open = os.fdopen, open
+    opened: list[object] = []
+
+    def broken_if_due(stream: Any) -> Any:
+        opened.append(stream)
+        return _BrokenStream(stream, failure) if len(opened) == at else stream
 
     def fdopen(handle: int, *args: Any, **kwargs: Any) -> Any:
-        opened.append(handle)
-        if len(opened) == at:
-            return _BrokenStream(handle, failure)
-        return real_fdopen(handle, *args, **kwargs)
+        return broken_if_due(real_fdopen(handle, *args, **kwargs))
+
+    def open_file(path: Any, mode: str = "r", *args: Any, **kwargs: Any) -> Any:
+        stream = real_open(path, mode, *args, **kwargs)
+        return broken_if_due(stream) if "w" in mode else stream
 
     monkeypatch.setattr(files.os, "fdopen", fdopen)
+    monkeypatch.setattr(results, "open", open_file, raising=False)
     return opened
 
 

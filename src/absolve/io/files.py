@@ -5,7 +5,7 @@ from __future__ import annotations
 import hashlib
 import os
 import tempfile
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 
 from ..errors import AbsolveError
@@ -96,7 +96,7 @@ def _umask() -> int:
     return mask
 
 
-def write_all(files: Mapping[Path, Content], *, force: bool) -> None:
+def write_all(files: Mapping[Path, Content], *, force: bool, staged: Sequence[tuple[Path, Path]] = ()) -> None:
     """Write several files after checking none would be overwritten unasked: all of them, or none.
 
     The contents are all prepared before this is called, so a failure in the
@@ -105,15 +105,19 @@ def write_all(files: Mapping[Path, Content], *, force: bool) -> None:
     they renamed into place. A failure or an interruption while writing
     (a full disk, Ctrl-C) therefore removes the temporary files and leaves
     any earlier results untouched, also with ``force``.
+
+    ``staged`` lists files the caller has already written in full, as
+    ``(temporary, target)`` pairs on the targets' disk; they are renamed
+    with the others, all or none.
     """
-    targets = [Path(path) for path in files]
+    targets = [Path(target) for _, target in staged] + [Path(path) for path in files]
     check_writable(targets, force=force)
-    staged: list[Path] = []
+    ready: list[Path] = [Path(temporary) for temporary, _ in staged]
     replaced: list[Path] = []
     try:
-        for target, content in zip(targets, files.values()):
-            staged.append(_stage(target, content))
-        for temporary, target in zip(staged, targets):
+        for target, content in zip(targets[len(staged):], files.values()):
+            ready.append(_stage(target, content))
+        for temporary, target in zip(ready, targets):
             try:
                 os.replace(temporary, target)
             except OSError as error:
@@ -122,7 +126,7 @@ def write_all(files: Mapping[Path, Content], *, force: bool) -> None:
                 ) from None
             replaced.append(target)
     except BaseException:
-        for temporary in staged:
+        for temporary in ready:
             temporary.unlink(missing_ok=True)
         # Renames take microseconds, so a failure among them is rare; without
         # force the results already renamed into place are taken away again.

@@ -18,7 +18,7 @@ import json
 import math
 import os
 import tempfile
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import Any, TextIO
 
@@ -28,7 +28,7 @@ from numpy.typing import NDArray
 from ..errors import AbsolveError
 from ..inverse import InversePrediction
 from ..quantify import MixtureResult
-from .files import _umask, check_writable
+from .files import Content, _umask, check_writable, write_all
 from .tables import csv_field, fixed_decimals, wide_table_lines
 
 __all__ = [
@@ -214,7 +214,13 @@ STREAMED_FILES = ("results.csv", "fit.csv", "fitted.csv", "residuals.csv", "resu
 
 
 def write_results_in_chunks(
-    chunks: Iterable[MixtureResult], targets: Mapping[str, Path], *, provenance: dict[str, Any], force: bool = False
+    chunks: Iterable[MixtureResult],
+    targets: Mapping[str, Path],
+    *,
+    provenance: dict[str, Any],
+    force: bool = False,
+    json_extra: dict[str, Any] | None = None,
+    finish: Callable[[], Mapping[Path, Content]] | None = None,
 ) -> int:
     """Write result files from results handed out chunk by chunk (see :func:`absolve.quantify.quantify_chunks`).
 
@@ -238,6 +244,12 @@ def write_results_in_chunks(
         Recorded in results.json.
     force : bool
         Replace existing files.
+    json_extra : dict, optional
+        Further top-level entries of results.json (as ``extra`` of :func:`results_json`).
+    finish : callable, optional
+        Called once every chunk has been written; returns further files
+        (path -> content, e.g. a report made from what was gathered on the
+        way), written and renamed together with the others, all or none.
 
     Returns
     -------
@@ -248,43 +260,48 @@ def write_results_in_chunks(
     if unknown:
         raise AbsolveError(f"cannot stream {unknown[0]!r}", fix="choose among " + ", ".join(STREAMED_FILES))
     check_writable(list(targets.values()), force=force)
-    with contextlib.ExitStack() as stack:
-        scratch = Path(stack.enter_context(tempfile.TemporaryDirectory(prefix=".absolve-", dir=_common_folder(targets.values()))))
-        temporary = {name: scratch / name for name in targets}
-        handles = {name: stack.enter_context(open(path, "w", encoding="utf-8", newline="")) for name, path in temporary.items()}
-        names: list[str] = []
-        parts: dict[str, list[Path]] = {"fitted.csv": [], "residuals.csv": []}
-        first: MixtureResult | None = None
-        for index, chunk in enumerate(chunks):
-            head = first is None
-            first = first or chunk
-            names.extend(chunk.scan_names)
-            for name, write in (("results.csv", results_csv), ("fit.csv", fit_csv)):
-                if name in handles:
-                    text = write(chunk)
-                    handles[name].write(text if head else text[text.index("\n") + 1 :])
-            for name, which in (("fitted.csv", "fitted"), ("residuals.csv", "residuals")):
-                if name in handles:
-                    part = scratch / f"{which}-{index:06d}.part"
-                    values = chunk.fitted if which == "fitted" else chunk.residuals
-                    with open(part, "w", encoding="utf-8", newline="") as stream:
-                        stream.writelines(fixed_decimals(values[:, j], "", "scaled") + "\n" for j in range(values.shape[1]))
-                    parts[name].append(part)
+    folder = _common_folder(targets.values())
+    try:
+        with contextlib.ExitStack() as stack:
+            scratch = Path(stack.enter_context(tempfile.TemporaryDirectory(prefix=".absolve-", dir=folder)))
+            temporary = {name: scratch / name for name in targets}
+            handles = {name: stack.enter_context(open(path, "w", encoding="utf-8", newline="")) for name, path in temporary.items()}
+            names: list[str] = []
+            parts: dict[str, list[Path]] = {"fitted.csv": [], "residuals.csv": []}
+            first: MixtureResult | None = None
+            for index, chunk in enumerate(chunks):
+                head = first is None
+                first = first or chunk
+                names.extend(chunk.scan_names)
+                for name, write in (("results.csv", results_csv), ("fit.csv", fit_csv)):
+                    if name in handles:
+                        text = write(chunk)
+                        handles[name].write(text if head else text[text.index("\n") + 1 :])
+                for name, which in (("fitted.csv", "fitted"), ("residuals.csv", "residuals")):
+                    if name in handles:
+                        part = scratch / f"{which}-{index:06d}.part"
+                        values = chunk.fitted if which == "fitted" else chunk.residuals
+                        with open(part, "w", encoding="utf-8", newline="") as stream:
+                            stream.writelines(fixed_decimals(values[:, j], "", "scaled") + "\n" for j in range(values.shape[1]))
+                        parts[name].append(part)
+                if "results.json" in handles:
+                    handles["results.json"].write((_json_head(chunk) if head else ",\n") + ",\n".join(scan_json_lines(chunk)))
+            if first is None:
+                raise AbsolveError("no scans to write", fix="give at least one scan")
             if "results.json" in handles:
-                handles["results.json"].write((_json_head(chunk) if head else ",\n") + ",\n".join(scan_json_lines(chunk)))
-        if first is None:
-            raise AbsolveError("no scans to write", fix="give at least one scan")
-        if "results.json" in handles:
-            handles["results.json"].write("\n], " + json.dumps({"provenance": provenance}, indent=1, allow_nan=False)[1:] + "\n")
-        for name in ("fitted.csv", "residuals.csv"):
-            if name in handles:
-                _join_columns(handles[name], "wavelength_nm", names, first.wavelengths, parts[name], stack)
-        for handle in handles.values():
-            handle.close()
-        for name, path in temporary.items():
-            os.chmod(path, 0o666 & ~_umask())
-        for name, path in temporary.items():
-            os.replace(path, targets[name])
+                tail = {"provenance": provenance, **(json_extra or {})}
+                handles["results.json"].write("\n], " + json.dumps(tail, indent=1, allow_nan=False)[1:] + "\n")
+            for name in ("fitted.csv", "residuals.csv"):
+                if name in handles:
+                    _join_columns(handles[name], "wavelength_nm", names, first.wavelengths, parts[name], stack)
+            for handle in handles.values():
+                handle.close()
+            for name, path in temporary.items():
+                os.chmod(path, 0o666 & ~_umask())
+            others = finish() if finish is not None else {}
+            write_all(others, force=force, staged=[(path, targets[name]) for name, path in temporary.items()])
+    except OSError as error:
+        raise AbsolveError(f"cannot write the results in {folder}: {error.strerror}", fix="check there is free space on the disk and the folder is writable") from None
     return len(names)
 
 

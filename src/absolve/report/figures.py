@@ -14,15 +14,18 @@ its unit.
 
 from __future__ import annotations
 
+import contextlib
 import io
 import re
 import textwrap
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Literal
 
 import numpy as np
 from numpy.typing import NDArray
+
+from .batch import ReportBatch, expected_rms_residual
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
@@ -361,21 +364,22 @@ def plot_overview(result: MixtureResult, ax: Axes | None = None) -> Axes:
     return ax
 
 
-def plot_residual_sizes(result: MixtureResult, library: ReferenceLibrary | None = None, ax: Axes | None = None) -> Axes:
+def plot_residual_sizes(
+    result: MixtureResult, library: ReferenceLibrary | None = None, ax: Axes | None = None, *, expected: NDArray[np.float64] | None = None
+) -> Axes:
     """Root-mean-square residual of every scan, with the scans the interferent screen flagged marked.
 
-    With a library that has a noise model, the rms residual expected from noise
-    alone at each scan's fitted absorbance is drawn too (grey).
+    The rms residual expected from noise alone at each scan's fitted
+    absorbance is drawn too (grey): ``expected`` when given, otherwise
+    computed with the library's noise model when it has one.
     """
     ax = ax if ax is not None else _new_axes(7.5, 2.8)
     x = _scan_axis(ax, result)
     many = result.n_scans > _RASTER_ABOVE
     rms = result.rms_residual
-    if library is not None and library.noise is not None:
-        sd = library.noise.standard_deviation(np.nan_to_num(result.fitted))
-        counts = result.used.sum(axis=1)
-        expected = np.sqrt(np.sum(np.where(result.used, sd**2, 0.0), axis=1) / np.maximum(counts, 1))
-        expected = np.where(counts > 0, expected, np.nan)
+    if expected is None and library is not None:
+        expected = expected_rms_residual(result, library)
+    if expected is not None:
         grey = {**_points(many, 10), "marker": "s" if many else "_"}
         ax.plot(x, expected, color=_GREY, label="expected from noise", **grey)
     ax.plot(x, rms, color=OKABE_ITO["black"], label="rms residual", **_points(many, 4))
@@ -485,7 +489,7 @@ def _file_stem(index: int, name: str) -> str:
 
 
 def render_figures(
-    result: MixtureResult,
+    result: MixtureResult | ReportBatch,
     library: ReferenceLibrary,
     *,
     detail: int = 12,
@@ -496,7 +500,9 @@ def render_figures(
 
     Parameters
     ----------
-    result : MixtureResult
+    result : MixtureResult or ReportBatch
+        A whole result with its spectra, or a batch gathered chunk by chunk
+        (which brings its own choice of scans to draw; ``detail`` is then unused).
     library : ReferenceLibrary
     detail : int
         Detailed scan figures for the first ``detail`` scans and for up to
@@ -509,33 +515,43 @@ def render_figures(
     Returns
     -------
     tuple of RenderedFigure
+        Scan figures carry the scan's index in the batch.
     """
-    first, flagged = detail_scans(result, detail)
+    batch = result if isinstance(result, ReportBatch) else ReportBatch.of(result, library, detail)
+    whole, details = batch.result, batch.details
     jobs: list[tuple[str, str, int | None, str]] = [
         ("library", "library", None, "Absorptivity of each component (bands: ±2 standard errors from the calibration) and the band half-width."),
-        ("overview", "overview", None, _overview_caption(result)),
+        ("overview", "overview", None, _overview_caption(whole)),
         ("residual-sizes", "residual-sizes", None, "Root-mean-square residual per scan against what noise alone would give; scans flagged by the interferent screen are marked in red-orange."),
     ]
-    for i in [*first, *flagged]:
-        jobs.append((_file_stem(i, result.scan_names[i]), "scan", i, _scan_caption(result, i)))
+    for local, i in enumerate(details.indices):
+        jobs.append((_file_stem(i, whole.scan_names[i]), "scan", local, _scan_caption(details.result, local)))
     rendered = []
-    for done, (key, place, scan, caption) in enumerate(jobs, start=1):
-        figure = _draw(result, library, place, scan)
-        rendered.append(RenderedFigure(key, place, scan, caption, figure_svg(figure, f"f{done}"), None if file_format is None else figure_bytes(figure, file_format)))
-        if progress is not None:
-            progress(done, len(jobs))
+    with _svg_settings():
+        for done, (key, place, scan, caption) in enumerate(jobs, start=1):
+            if place == "library":
+                figure = library_figure(library)
+            elif place == "overview":
+                figure = plot_overview(whole).figure
+            elif place == "residual-sizes":
+                figure = plot_residual_sizes(whole, ax=None, expected=batch.expected_rms).figure
+            else:
+                assert scan is not None
+                figure = scan_figure(details.result, library, scan)
+            index = None if scan is None else details.indices[scan]
+            rendered.append(RenderedFigure(key, place, index, caption, figure_svg(figure, f"f{done}"), None if file_format is None else figure_bytes(figure, file_format)))
+            if progress is not None:
+                progress(done, len(jobs))
     return tuple(rendered)
 
 
-def _draw(result: MixtureResult, library: ReferenceLibrary, place: str, scan: int | None) -> Figure:
-    if place == "library":
-        return library_figure(library)
-    if place == "overview":
-        return plot_overview(result).figure  # type: ignore[return-value]
-    if place == "residual-sizes":
-        return plot_residual_sizes(result, library).figure  # type: ignore[return-value]
-    assert scan is not None
-    return scan_figure(result, library, scan)
+@contextlib.contextmanager
+def _svg_settings() -> Iterator[None]:
+    """SVG text as text elements, not glyph outlines (quicker to write, and smaller), and ids the same on every run."""
+    import matplotlib
+
+    with matplotlib.rc_context({"svg.fonttype": "none", "svg.hashsalt": "absolve"}):
+        yield
 
 
 def _overview_caption(result: MixtureResult) -> str:

@@ -1,0 +1,151 @@
+"""What a report needs of a batch quantified chunk by chunk, gathered in bounded memory.
+
+A report shows every scan's numbers but draws only a few scans in detail:
+the first ``detail`` and up to ``detail`` flagged ones, most strongly
+flagged first (:func:`absolve.report.figures.detail_scans`). A batch handed
+out in chunks (:func:`absolve.quantify.quantify_chunks`) is gathered here as
+its per-scan numbers without the fitted and residual spectra, plus the
+spectra of the scans that are, so far, the ones to draw. Memory therefore
+grows with the per-scan numbers, not with the spectra, and the choice at the
+end is the one :func:`~absolve.report.figures.detail_scans` makes on the
+whole batch.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from ..library import ReferenceLibrary
+from ..quantify import MixtureResult, concatenate_results
+
+__all__ = ["DetailScans", "ReportBatch", "expected_rms_residual"]
+
+
+def expected_rms_residual(result: MixtureResult, library: ReferenceLibrary) -> NDArray[np.float64] | None:
+    """Root-mean-square residual each scan would have from instrument noise alone at its fitted absorbance.
+
+    None when the library has no noise model; NaN for scans with no used point.
+    """
+    if library.noise is None or result.fitted is None:
+        return None
+    sd = library.noise.standard_deviation(np.nan_to_num(result.fitted))
+    counts = result.used.sum(axis=1)
+    expected = np.sqrt(np.sum(np.where(result.used, sd**2, 0.0), axis=1) / np.maximum(counts, 1))
+    return np.where(counts > 0, expected, np.nan)
+
+
+@dataclass(frozen=True)
+class DetailScans:
+    """The scans drawn in detail, with their spectra.
+
+    Attributes
+    ----------
+    first, flagged : tuple of int
+        Batch indices of the first scans and of the flagged scans not among
+        them, most strongly flagged first.
+    result : MixtureResult
+        The result of exactly those scans, ``first`` then ``flagged``.
+    """
+
+    first: tuple[int, ...]
+    flagged: tuple[int, ...]
+    result: MixtureResult
+
+    @property
+    def indices(self) -> tuple[int, ...]:
+        """Batch index of each scan of :attr:`result`."""
+        return self.first + self.flagged
+
+
+def _is_flagged(result: MixtureResult) -> NDArray[np.bool_]:
+    return np.fromiter((bool(flags) for flags in result.scan_flags), dtype=bool, count=result.n_scans) | result.interferent
+
+
+class ReportBatch:
+    """A batch's report material, gathered one chunk of consecutive scans at a time.
+
+    Parameters
+    ----------
+    library : ReferenceLibrary
+        The library the scans were quantified with (its noise model gives the
+        expected residual size).
+    detail : int
+        Draw the first ``detail`` scans and up to ``detail`` flagged ones.
+    """
+
+    def __init__(self, library: ReferenceLibrary, detail: int) -> None:
+        self.library = library
+        self.detail = max(int(detail), 0)
+        self.n_scans = 0
+        self._parts: list[MixtureResult] = []
+        self._expected: list[NDArray[np.float64] | None] = []
+        self._kept: MixtureResult | None = None
+        self._kept_index = np.zeros(0, dtype=np.intp)
+        self._kept_p = np.zeros(0)
+        self._kept_flagged = np.zeros(0, dtype=bool)
+
+    @classmethod
+    def of(cls, result: MixtureResult, library: ReferenceLibrary, detail: int) -> ReportBatch:
+        """The report material of a whole result (with its spectra)."""
+        batch = cls(library, detail)
+        batch.add(result)
+        return batch
+
+    def add(self, chunk: MixtureResult) -> None:
+        """Take the next chunk of scans (they follow the scans taken so far)."""
+        if chunk.fitted is None:
+            raise ValueError("a chunk must hold its fitted and residual spectra")
+        index = self.n_scans + np.arange(chunk.n_scans)
+        self._parts.append(chunk.without_spectra())
+        self._expected.append(expected_rms_residual(chunk, self.library))
+        flagged = _is_flagged(chunk)
+        p = np.nan_to_num(chunk.screening.p_value, nan=1.0)
+        # Candidates from this chunk: scans among the first, and the best flagged ones after them.
+        early = index < self.detail
+        late = np.flatnonzero(flagged & ~early)
+        late = late[np.lexsort((late, p[late]))][: self.detail]
+        new = np.concatenate([np.flatnonzero(early), late])
+        pooled = chunk.take(new) if self._kept is None else concatenate_results([self._kept, chunk.take(new)])
+        pool_index = np.concatenate([self._kept_index, index[new]])
+        pool_p = np.concatenate([self._kept_p, p[new]])
+        pool_flagged = np.concatenate([self._kept_flagged, flagged[new]])
+        keep = self._choose(pool_index, pool_p, pool_flagged)
+        self._kept = pooled.take(keep)
+        self._kept_index, self._kept_p, self._kept_flagged = pool_index[keep], pool_p[keep], pool_flagged[keep]
+        self.n_scans += chunk.n_scans
+
+    def _choose(self, index: NDArray[np.intp], p: NDArray[np.float64], flagged: NDArray[np.bool_]) -> NDArray[np.intp]:
+        """Positions (in the pool) of the first scans, then of the most strongly flagged others."""
+        first = np.flatnonzero(index < self.detail)
+        first = first[np.argsort(index[first])]
+        others = np.flatnonzero(flagged & (index >= self.detail))
+        others = others[np.lexsort((index[others], p[others]))][: self.detail]
+        return np.concatenate([first, others])
+
+    @property
+    def result(self) -> MixtureResult:
+        """Every scan's numbers, without the fitted and residual spectra."""
+        if not self._parts:
+            raise ValueError("no scans were added")
+        if len(self._parts) > 1:
+            self._parts = [concatenate_results(self._parts)]
+        return self._parts[0]
+
+    @property
+    def expected_rms(self) -> NDArray[np.float64] | None:
+        """:func:`expected_rms_residual` of every scan (None without a noise model)."""
+        if any(part is None for part in self._expected):
+            return None
+        return np.concatenate(self._expected)  # type: ignore[arg-type]
+
+    @property
+    def details(self) -> DetailScans:
+        """The scans to draw in detail, with their spectra."""
+        if self._kept is None:
+            raise ValueError("no scans were added")
+        n_first = int(np.sum(self._kept_index < self.detail))
+        indices = self._kept_index.tolist()
+        return DetailScans(tuple(indices[:n_first]), tuple(indices[n_first:]), self._kept)
