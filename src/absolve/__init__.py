@@ -26,27 +26,77 @@ AbsolveError
     The one exception type for problems with the user's input.
 """
 
+import importlib
 from importlib.metadata import PackageNotFoundError, version
+from typing import TYPE_CHECKING, Any
 
-# Defined before the submodules are imported: some of them record it in the files they write.
 try:
     __version__ = version("absolve")
 except PackageNotFoundError:  # running from a source tree that was never installed
     __version__ = "0+unknown"
 
-from .calibration import Calibration, calibrate
-from .checking import CheckResult, check_scans
-from .errors import AbsolveError
-from .inverse import InverseModel, InversePrediction
-from .io.library_file import read_library, write_library
-from .io.model_file import read_model, write_model
-from .io.tables import read_scan_table, read_scans
-from .library import ComponentCalibration, NoiseModel, ReferenceLibrary, library_from_absorptivities
-from .planning import WavelengthPlan, plan_wavelengths
-from .quantify import MixtureResult, quantify
-from .screening import Diagnosis, Screening, SuspectReport, explain_with_suspects, screen_residuals
-from .solver import BatchSolution, solve_nonnegative
-from .spectra import Spectra
+# Where each public name lives. Submodules are imported on first use (PEP 562), so that
+# ``import absolve`` and the command line start quickly and each command loads only what it needs.
+_HOMES: dict[str, str] = {
+    "Calibration": "calibration",
+    "calibrate": "calibration",
+    "CheckResult": "checking",
+    "check_scans": "checking",
+    "AbsolveError": "errors",
+    "InverseModel": "inverse",
+    "InversePrediction": "inverse",
+    "read_library": "io.library_file",
+    "write_library": "io.library_file",
+    "read_model": "io.model_file",
+    "write_model": "io.model_file",
+    "read_scan_table": "io.tables",
+    "read_scans": "io.tables",
+    "ComponentCalibration": "library",
+    "NoiseModel": "library",
+    "ReferenceLibrary": "library",
+    "library_from_absorptivities": "library",
+    "WavelengthPlan": "planning",
+    "plan_wavelengths": "planning",
+    "MixtureResult": "quantify",
+    "quantify": "quantify",
+    "Diagnosis": "screening",
+    "Screening": "screening",
+    "SuspectReport": "screening",
+    "explain_with_suspects": "screening",
+    "screen_residuals": "screening",
+    "BatchSolution": "solver",
+    "solve_nonnegative": "solver",
+    "Spectra": "spectra",
+}
+
+
+def __getattr__(name: str) -> Any:
+    home = _HOMES.get(name)
+    if home is None:
+        raise AttributeError(f"module 'absolve' has no attribute {name!r}")
+    value = getattr(importlib.import_module(f".{home}", __name__), name)
+    globals()[name] = value
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted({*globals(), *_HOMES})
+
+
+if TYPE_CHECKING:
+    from .calibration import Calibration, calibrate
+    from .checking import CheckResult, check_scans
+    from .errors import AbsolveError
+    from .inverse import InverseModel, InversePrediction
+    from .io.library_file import read_library, write_library
+    from .io.model_file import read_model, write_model
+    from .io.tables import read_scan_table, read_scans
+    from .library import ComponentCalibration, NoiseModel, ReferenceLibrary, library_from_absorptivities
+    from .planning import WavelengthPlan, plan_wavelengths
+    from .quantify import MixtureResult, quantify
+    from .screening import Diagnosis, Screening, SuspectReport, explain_with_suspects, screen_residuals
+    from .solver import BatchSolution, solve_nonnegative
+    from .spectra import Spectra
 
 __all__ = [
     "AbsolveError",

@@ -40,7 +40,7 @@ from typing import Any, Literal, get_args
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy import stats
+from scipy import special
 
 from .errors import AbsolveError
 from .library import NoiseModel, ReferenceLibrary
@@ -609,7 +609,7 @@ class _Job:
         budget["dilution"] = np.abs(concentration) * tol_d
         std_uncertainty = np.sqrt(sum(value**2 for value in budget.values()))
         effective_dof = _welch_satterthwaite(budget, out.noise_dof, library.residual_dof, std_uncertainty)
-        coverage = np.where(np.isfinite(effective_dof), stats.t.ppf(0.5 + _COVERAGE_PROBABILITY / 2, np.maximum(effective_dof, 1.0)), 2.0)
+        coverage = np.where(np.isfinite(effective_dof), special.stdtrit(np.maximum(effective_dof, 1.0), 0.5 + _COVERAGE_PROBABILITY / 2), 2.0)
         coverage = np.where(np.isnan(std_uncertainty), np.nan, coverage)
         upper = np.where(out.at_bound, np.maximum(self.unconstrained[start:stop] * scale, 0.0) + coverage * std_uncertainty, np.nan)
         lod = 3.3 * out.budget["spectral_noise"] * scale
@@ -898,7 +898,7 @@ def _propagate(
         scale = np.ones(len(rows))
         noise_dof = np.inf
     if have_model:
-        out.p_value[rows] = stats.chi2.sf(chi_square, dof) if dof > 0 else np.nan
+        out.p_value[rows] = special.chdtrc(dof, chi_square) if dof > 0 else np.nan
         scale = np.maximum(scale, 1.0)
         uses_scan_scale = scale > 1.0
     else:

@@ -13,15 +13,13 @@ import json
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any, get_args
+from typing import TYPE_CHECKING, Any, get_args
 
 import numpy as np
 
 from .errors import AbsolveError
-from .inverse import InverseModel, InversePrediction
 from .io.files import Content, check_writable, write_all
 from .io.library_file import read_library
-from .io.model_file import read_model
 from .io.results import prediction_fit_csv, prediction_results_csv, write_results_in_chunks
 from .io.tables import read_scans
 from .quantify import MixtureResult, quantify_chunks
@@ -29,6 +27,9 @@ from .report.batch import ReportBatch
 from .report.figures import FigureFormat, render_figures
 from .report.html import build_report
 from .spectra import Spectra
+
+if TYPE_CHECKING:
+    from .inverse import InverseModel, InversePrediction
 
 __all__ = ["FIGURE_FOLDER", "Progress", "QuantifyRequest", "QuantifyOutcome", "run_quantify", "RESULT_FILES"]
 
@@ -131,7 +132,7 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
     if request.model is not None:
         # Both a library and a PLS model: the library's results lead, the model's are compared with them.
         progress("predicting with the PLS model", 0, 0)
-        prediction = _predict(read_model(request.model), spectra, request)
+        prediction = _predict(_read_model(request.model), spectra, request)
         inputs.append(request.model)
     record = provenance(inputs, _options(request))
     chunks = quantify_chunks(
@@ -188,6 +189,13 @@ def _read_samples(request: QuantifyRequest) -> tuple[Spectra, list[Path]]:
     return spectra, inputs
 
 
+def _read_model(path: Path) -> InverseModel:
+    """The PLS model file (its reader and the PLS code are loaded only when a model is used)."""
+    from .io.model_file import read_model
+
+    return read_model(path)
+
+
 def _predict(model: InverseModel, spectra: Spectra, request: QuantifyRequest) -> InversePrediction:
     """PLS predictions of ``spectra``, corrected for dilution."""
     prediction = model.predict(spectra, path_length_cm=request.path_length)
@@ -223,7 +231,7 @@ def _run_model(request: QuantifyRequest, targets: list[Path]) -> QuantifyOutcome
     from .report.html import build_model_report
 
     assert request.model is not None
-    model = read_model(request.model)
+    model = _read_model(request.model)
     spectra, inputs = _read_samples(request)
     inputs.append(request.model)
     prediction = _predict(model, spectra, request)

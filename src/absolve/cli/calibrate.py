@@ -8,7 +8,6 @@ from typing import Annotated, Optional
 import numpy as np
 import typer
 
-from ..calibration import calibrate as fit_library
 from ..errors import AbsolveError
 from ..io.files import check_writable, write_all
 from ..io.library_file import MAX_ABSORPTIVITY, library_to_json
@@ -72,6 +71,8 @@ def _from_standards(scans, standards, unit, blank, low, high, quantity, decimal,
     conc, components = concentration_matrix(table, spectra.names)
     dilution = per_scan_value(table, spectra.names, "dilution")
     paths = per_scan_value(table, spectra.names, "path_length_cm")
+    from ..calibration import calibrate as fit_library  # scipy-heavy: loaded only when standards are fitted
+
     try:
         return fit_library(
             spectra, conc / dilution[:, None], components, unit,

@@ -7,11 +7,10 @@ import io
 import json
 import re
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import TYPE_CHECKING, Annotated, Optional
 
 import typer
 
-from ..checking import CheckResult, check_scans
 from ..io.files import check_writable, write_all
 from ..io.library_file import read_library
 from ..io.tables import read_scans
@@ -19,6 +18,9 @@ from ..render import format_table
 from ..spectra import Spectra
 from ._app import app
 from ._common import parse_range
+
+if TYPE_CHECKING:
+    from ..checking import CheckResult
 
 
 @app.command()
@@ -42,6 +44,8 @@ def check(
     reference = read_library(library)
     spectra = read_scans(scans, decimal=decimal, quantity=quantity)  # type: ignore[arg-type]
     candidates = _read_suspects(suspects, decimal) if suspects is not None else None
+    from ..checking import check_scans  # loaded by the command that needs it: quick start-up
+
     result = check_scans(
         spectra, reference, suspects=candidates, baseline=baseline,  # type: ignore[arg-type]
         wavelength_range=parse_range(wavelength_range), path_length=path_length, alpha=alpha,

@@ -7,18 +7,10 @@ from typing import Annotated
 
 import typer
 
-from ..calibration import calibrate as fit_library
-from ..demo_data import DEMO_UNIT, demo_files
-from ..inverse import InverseModel
 from ..io.files import check_writable, write_all
 from ..io.library_file import library_to_json
-from ..io.model_file import model_to_json
 from ..io.tables import concentration_matrix, per_scan_value, read_concentration_table, read_scans
-from ..planning import plan_wavelengths
 from ..render import library_report
-from ..report.figures import figure_svg
-from ..report.html import plan_section
-from ..workflow import RESULT_FILES, QuantifyRequest, run_quantify
 from ._app import app
 from ._common import provenance
 
@@ -31,6 +23,16 @@ def demo(
     force: Annotated[bool, typer.Option("--force", help="Replace the results of an earlier demo run.")] = False,
 ) -> None:
     """Calibrate the bundled standards, plan wavelengths, quantify the bundled bath samples, write the report."""
+    # The whole tool is needed here; loading it inside keeps every other command's start-up quick.
+    from ..calibration import calibrate as fit_library
+    from ..demo_data import DEMO_UNIT, demo_files
+    from ..inverse import InverseModel
+    from ..io.model_file import model_to_json
+    from ..planning import plan_wavelengths
+    from ..report.figures import figure_svg
+    from ..report.html import plan_section
+    from ..workflow import RESULT_FILES, QuantifyRequest, run_quantify
+
     files = demo_files()
     library_path, model_path = out / "library.json", out / "model.json"
     check_writable([library_path, model_path, *(out / name for name in RESULT_FILES)], force=force)

@@ -12,7 +12,6 @@ import typer
 from ..errors import AbsolveError
 from ..io.files import check_writable, write_all
 from ..io.library_file import read_library
-from ..planning import plan_wavelengths
 from ..report.plan_figure import FIGURE_FORMATS, render_plan_figure
 from ._app import app
 from ._common import parse_range, say
@@ -78,6 +77,8 @@ def plan(
     low, high = parse_range(wavelength_range)
     concentrations = _parse_expected(expected or [])
     reference = read_library(library)
+    from ..planning import plan_wavelengths  # loaded by the command that needs it: quick start-up
+
     result = plan_wavelengths(
         reference,
         count,

@@ -9,7 +9,6 @@ import typer
 
 from ..errors import AbsolveError
 from ..render import ProgressLine
-from ..workflow import QuantifyRequest, run_quantify
 from ._app import app
 from ._common import parse_range
 
@@ -39,6 +38,8 @@ def quantify(
     """Quantify each component in every scan, with uncertainties, diagnostics and a report."""
     if library is None and model is None:
         raise AbsolveError("quantify needs --library, --model, or both (to compare them)", fix="e.g. --library lib.json")
+    from ..workflow import QuantifyRequest, run_quantify  # loaded by the command that needs it: quick start-up
+
     request = QuantifyRequest(
         scans=list(scans), out=out, library=library, model=model, baseline=baseline,
         wavelength_range=parse_range(wavelength_range), path_length=path_length, dilution=dilution,

@@ -7,9 +7,7 @@ from typing import Annotated, Optional
 
 import typer
 
-from ..inverse import InverseModel
 from ..io.files import check_writable, write_all
-from ..io.model_file import model_to_json
 from ..io.tables import concentration_matrix, per_scan_value, read_concentration_table, read_scans
 from ..units import check_unit
 from ._app import app
@@ -57,6 +55,9 @@ def train(
     span = None
     if low is not None or high is not None:
         span = (spectra.wavelengths[0] if low is None else low, spectra.wavelengths[-1] if high is None else high)
+    from ..inverse import InverseModel  # loaded by the command that needs it: quick start-up
+    from ..io.model_file import model_to_json
+
     model = InverseModel(
         derivative=derivative,  # type: ignore[arg-type]
         window=window,

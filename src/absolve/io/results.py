@@ -20,16 +20,18 @@ import os
 import tempfile
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
-from typing import Any, TextIO
+from typing import TYPE_CHECKING, Any, TextIO
 
 import numpy as np
 from numpy.typing import NDArray
 
 from ..errors import AbsolveError
-from ..inverse import InversePrediction
 from ..quantify import MixtureResult
 from .files import Content, _umask, check_writable, write_all
 from .tables import csv_field, fixed_decimals, wide_table_lines
+
+if TYPE_CHECKING:
+    from ..inverse import InversePrediction
 
 __all__ = [
     "results_csv", "fit_csv", "spectra_csv", "spectra_csv_lines", "results_json", "scan_json_lines", "write_results_in_chunks", "STREAMED_FILES",

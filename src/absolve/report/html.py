@@ -18,15 +18,17 @@ from __future__ import annotations
 
 import html
 from collections.abc import Sequence
-from typing import Any, Protocol
+from typing import TYPE_CHECKING, Any, Protocol
 
 import numpy as np
 from numpy.typing import NDArray
 
-from ..inverse import InversePrediction
 from ..library import ReferenceLibrary
 from ..quantify import FLAG_TEXT, MixtureResult
 from .figures import RenderedFigure
+
+if TYPE_CHECKING:
+    from ..inverse import InversePrediction
 
 __all__ = ["CAUTIONS", "TABLE_ROWS", "build_model_report", "build_report", "comparison_section", "plan_section"]
 
