@@ -20,9 +20,16 @@ raises false alarms (correlation inflates it) or misses real interferents
    directions, so this test has far more power than an omnibus chi-square; and
    because it is a ratio of two energies measured in the same scan, an error in
    the noise model's overall scale cancels;
-4. adds an omnibus chi-square on the whole whitened residual (against a noise
+4. scans the same smooth subspace with a matched filter: Gaussian band
+   templates (whitened and projected like the residual) at every centre, the
+   largest normalised projection studentised by the rough part, its p-value
+   from Rice's upcrossing bound for the maximum over a curve of templates.
+   Absorbers add localised positive bands, so this one-sided test concentrates
+   on one direction where the F test spreads over all smooth ones;
+5. adds an omnibus chi-square on the whole whitened residual (against a noise
    level ``noise_tolerance`` times the model's, so only gross excess counts),
-   for rough structure and noisy scans, combined by a weighted Bonferroni rule.
+   for rough structure and noisy scans, combined with the other two by a
+   weighted Bonferroni rule.
 
 Flagged scans get a :class:`Diagnosis`: the smooth unexplained residual is
 matched against shape templates (a foreign band, scattering, a wavelength
@@ -45,6 +52,15 @@ Prais, S. J. & Winsten, C. B. (1954). Trend estimators and serial correlation.
 Cowles Commission discussion paper 383.
 Self, S. G. & Liang, K.-Y. (1987). Asymptotic properties of maximum likelihood
 estimators and likelihood ratio tests under nonstandard conditions. JASA 82, 605-610.
+Turin, G. L. (1960). An introduction to matched filters. IRE Trans. Inf. Theory 6,
+311-329 (the matched filter).
+Rice, S. O. (1944). Mathematical analysis of random noise. Bell Syst. Tech. J. 23,
+282-332 (expected upcrossings); Hotelling, H. (1939). Tubes and spheres in n-spaces,
+and a class of statistical problems. Amer. J. Math. 61, 440-460; Davies, R. B. (1977,
+1987). Hypothesis testing when a nuisance parameter is present only under the
+alternative. Biometrika 64, 247-254 and 74, 33-43; Knowles, M. & Siegmund, D. (1989).
+On Hotelling's approach to testing for a nonlinear parameter in regression. Int.
+Statist. Rev. 57, 205-220 (the maximum over a curve of templates).
 """
 
 from __future__ import annotations
@@ -97,6 +113,10 @@ _RANK_TOL = 1e-9
 _GRAM_TOL = 1e-12
 # Width of the narrowest structure the default cosine basis resolves, in nm.
 _SMOOTH_SCALE_NM = 15.0
+# Spacing of neighbouring band centres in the matched-filter band scan, as a fraction of the band
+# width: neighbours then correlate above 0.97, so the largest statistic on the grid is within about
+# 1 % of the maximum over continuous centres.
+_SCAN_STEP = 1.0 / 3.0
 # Band widths (Gaussian standard deviation, nm) and scattering exponents tried by the diagnosis.
 _BAND_WIDTHS_NM = (3.0, 4.5, 6.5, 9.0, 13.0, 18.0, 25.0, 35.0, 50.0)
 _SCATTER_EXPONENTS = (0.5, 1.0, 1.5, 2.0, 3.0, 4.0, 5.0)
@@ -204,7 +224,7 @@ class Screening:
         Smooth-structure F ratio: energy per degree of freedom of the whitened
         residual in the smooth subspace over that in the rest. About 1 for noise.
     p_value : ndarray, shape (n_scans,)
-        Combined p-value (weighted Bonferroni of ``smooth_p`` and ``omnibus_p``);
+        Combined p-value (weighted Bonferroni of ``smooth_p``, ``band_p`` and ``omnibus_p``);
         NaN where the scan has too few usable points to test.
     flagged : ndarray of bool, shape (n_scans,)
         ``p_value < alpha``.
@@ -225,6 +245,9 @@ class Screening:
         white noise, towards 0 for smooth structure).
     smooth_dof, rough_dof : ndarray of int, shape (n_scans,)
         Degrees of freedom of the F ratio.
+    band_p : ndarray, shape (n_scans,)
+        p-value (an upper bound) of the matched-filter band scan; NaN where not
+        tested (records made without it default to NaN).
     """
 
     statistic: NDArray[np.float64]
@@ -239,6 +262,12 @@ class Screening:
     durbin_watson: NDArray[np.float64]
     smooth_dof: NDArray[np.int64]
     rough_dof: NDArray[np.int64]
+    band_p: NDArray[np.float64] = field(default_factory=lambda: np.empty(0))
+
+    def __post_init__(self) -> None:
+        # Records built without the band scan (e.g. for untestable scans) hold NaN there.
+        if self.band_p.size != self.statistic.size:
+            object.__setattr__(self, "band_p", np.full(self.statistic.size, np.nan))
 
     @property
     def n_scans(self) -> int:
@@ -257,6 +286,7 @@ class Screening:
                     "flagged": bool(self.flagged[i]),
                     "smooth_p": _nan_to_none(self.smooth_p[i]),
                     "omnibus_p": _nan_to_none(self.omnibus_p[i]),
+                    "band_p": _nan_to_none(self.band_p[i]),
                     "noise_ratio": _nan_to_none(self.noise_ratio[i]),
                     "durbin_watson": _nan_to_none(self.durbin_watson[i]),
                     "smooth_dof": int(self.smooth_dof[i]),
@@ -621,6 +651,7 @@ class _Subspaces:
     guard_basis: NDArray[np.float64]  # (n, n_wl, 2p) orthonormal: the design and its smooth part
     design_rank: NDArray[np.int64]
     white_smooth: NDArray[np.float64]  # (n, n_wl, k) whitened cosine basis
+    smooth_gram: NDArray[np.float64]  # (n, k, k) Gram matrix of the whitened cosine basis projected off the guard
     smooth_vectors: NDArray[np.float64]  # (n, k, k) Gram eigenvectors scaled by 1/sqrt(eigenvalue), 0 if dropped
     smooth_rank: NDArray[np.int64]
     residual: NDArray[np.float64]  # (n, n_wl) whitened residual projected off the design
@@ -685,12 +716,105 @@ def _subspaces(
     projected_smooth = white_smooth - guard_basis @ overlap
     coords = np.einsum("nkj,nk->nj", vectors, np.einsum("nwk,nw->nk", projected_smooth, off_design))
     return _Subspaces(
-        mask, rho, previous, linked, sd, noise, design_basis, guard_basis, design_rank, white_smooth, vectors, keep.sum(axis=1),
+        mask, rho, previous, linked, sd, noise, design_basis, guard_basis, design_rank, white_smooth, gram, vectors, keep.sum(axis=1),
         off_design, coords,
     )
 
 
+# --------------------------------------------------------------------------- band scan (matched filter)
+
+
+def _band_templates(grid: NDArray[np.float64], n_terms: int) -> NDArray[np.float64]:
+    """Gaussian bands (n_templates, n_wl) with centres across the grid, a third of a width apart.
+
+    The width (standard deviation) is the smooth subspace's resolution, the
+    span per cosine term (15 nm by default): the test looks at the residual
+    in that subspace only, where a narrower band looks like one of this width,
+    and one width is one curve of templates, for which the p-value bound of
+    :func:`_band_scan_p` is nearly exact (several widths would be joined by
+    Bonferroni's inequality, measured to cost more power than the mismatch of
+    broader bands does).
+    """
+    span = grid[-1] - grid[0]
+    width = span / n_terms
+    centres = np.linspace(grid[0], grid[-1], int(np.ceil(span / (_SCAN_STEP * width))) + 1)
+    return np.exp(-0.5 * ((grid[None, :] - centres[:, None]) / width) ** 2)
+
+
+def _band_scan_statistic(
+    numerator: NDArray[np.float64], norm2: NDArray[np.float64], cross: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Largest normalised band projection of each scan, and the length of the curve of templates.
+
+    With ``tau_t`` the coordinates of template ``t`` (whitened, projected like
+    the residual) and ``y`` the residual's, all in one orthonormal basis of the
+    scan's smooth subspace: ``numerator = <tau_t, y>``, ``norm2 = |tau_t|**2``
+    and ``cross = <tau_t, tau_t+1>``, each (n_scans, n_templates[-1]). The
+    statistic is ``max_t <tau_t, y> / |tau_t|``, N(0, 1) for each ``t`` under
+    white noise; the curve's length is that of the piecewise great-circle path
+    through the normalised templates, ``sum arccos(<u_t, u_t+1>)``. The
+    largest statistic over the templates is at most the maximum over that path,
+    so the bound of :func:`_band_scan_p` holds for it. A template the design
+    absorbs entirely is left out, and the path through it counted at the
+    longest (pi).
+    """
+    valid = norm2 > _GRAM_TOL * np.max(norm2, axis=1, initial=0.0)[:, None]
+    scale = np.where(valid, 1.0 / np.sqrt(np.where(valid, norm2, 1.0)), 0.0)
+    largest = np.max(np.where(valid, numerator * scale, -np.inf), axis=1, initial=-np.inf)
+    cosine = np.where(valid[:, :-1] & valid[:, 1:], cross * scale[:, :-1] * scale[:, 1:], -1.0)
+    return largest, np.sum(np.arccos(np.clip(cosine, -1.0, 1.0)), axis=1)
+
+
+def _band_scan_p(
+    largest: NDArray[np.float64], length: NDArray[np.float64], rough_dof: NDArray[np.int64]
+) -> NDArray[np.float64]:
+    """p-value of the largest Studentised band statistic: Rice's upcrossing bound.
+
+    For a curve of unit-norm templates ``u(s)`` in a subspace where the
+    residual coordinates ``y`` are independent N(0, sigma**2),
+    ``X(s) = <u(s), y> / sigma`` is a unit-variance Gaussian process and, by
+    Rice's formula, ``P(max X > c) <= P(X(s_0) > c) + E[upcrossings of c]
+    = Phi(-c) + kappa / (2 pi) exp(-c**2 / 2)`` with ``kappa`` the curve's
+    length on the unit sphere (Rice 1944; Hotelling 1939; Davies 1977, 1987;
+    Knowles & Siegmund 1989): the look-elsewhere cost of scanning the band
+    centre. ``sigma`` is estimated from the rough part, independent of ``y``,
+    with ``nu`` degrees of freedom; averaging the bound over that estimate
+    (``sigma_hat**2 / sigma**2 ~ chi2(nu) / nu``) gives exactly
+    ``P(t_nu > c) + kappa / (2 pi) (1 + c**2 / nu) ** (-nu / 2)`` (the
+    chi-square moment generating function).
+    """
+    nu = np.maximum(rough_dof, 1).astype(np.float64)
+    c = np.maximum(largest, 0.0)
+    crossings = length / (2.0 * np.pi) * np.exp(-0.5 * nu * np.log1p(c**2 / nu))
+    return np.minimum(1.0, scipy.stats.t.sf(c, nu) + crossings)
+
+
 # --------------------------------------------------------------------------- energies in bulk
+
+
+@dataclass(frozen=True)
+class _Sums:
+    """Per-scan sums the tests are made of, filled block by block.
+
+    ``energy``: whitened residual energy off the design; ``smooth_energy``: its
+    share in the smooth subspace; ``dw_numerator``: the Durbin-Watson numerator;
+    ``band_largest`` and ``band_length``: the band scan's statistic and curve
+    length (:func:`_band_scan_statistic`); ``total_dof``
+    and ``smooth_dof``: degrees of freedom off the design and in the smooth subspace.
+    """
+
+    energy: NDArray[np.float64]
+    smooth_energy: NDArray[np.float64]
+    dw_numerator: NDArray[np.float64]
+    band_largest: NDArray[np.float64]
+    band_length: NDArray[np.float64]
+    total_dof: NDArray[np.int64]
+    smooth_dof: NDArray[np.int64]
+
+    @classmethod
+    def empty(cls, n_scans: int) -> _Sums:
+        floats = [np.empty(n_scans) for _ in range(5)]
+        return cls(*floats, np.empty(n_scans, dtype=np.int64), np.empty(n_scans, dtype=np.int64))
 
 
 def _energies(
@@ -703,8 +827,9 @@ def _energies(
     noise: NoiseModel,
     extra: NDArray[np.float64] | None,
     shared_design: bool,
-) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.int64], NDArray[np.int64]]:
-    """Whitened residual energy off the design, its smooth share, Durbin-Watson numerator and the degrees of freedom.
+    templates: NDArray[np.float64],
+) -> _Sums:
+    """Whitened residual energies, band scan and degrees of freedom of every scan (see :class:`_Sums`).
 
     Scans sharing the design and their usable points share every subspace
     before whitening, so those are found once per point pattern
@@ -713,16 +838,12 @@ def _energies(
     path of :func:`_subspaces`.
     """
     n_scans = resid.shape[0]
-    energy = np.empty(n_scans)
-    smooth_energy = np.empty(n_scans)
-    dw_numerator = np.empty(n_scans)
-    total_dof = np.empty(n_scans, dtype=np.int64)
-    smooth_dof = np.empty(n_scans, dtype=np.int64)
+    sums = _Sums.empty(n_scans)
     general = np.ones(n_scans, dtype=bool)
     if shared_design:
         # One BLAS thread: on a busy machine a second one mostly waits (measured 2-3x slower with two).
         with _one_blas_thread():
-            _bulk_energies(grid, resid, fit, x[0], mask, basis, noise, extra, (energy, smooth_energy, dw_numerator, total_dof, smooth_dof), general)
+            _bulk_energies(grid, resid, fit, x[0], mask, basis, noise, extra, templates, sums, general)
     rows = np.flatnonzero(general)
     if rows.size:
         # Stacks of small matrices: BLAS threads only add synchronisation (tens of times slower on a busy machine).
@@ -731,25 +852,47 @@ def _energies(
                 block = rows[start : start + _BLOCK]
                 sub = _subspaces(grid, resid[block], fit[block], x[block], mask[block], basis, noise, None if extra is None else extra[block])
                 u = sub.residual
-                energy[block] = np.einsum("nw,nw->n", u, u)
-                smooth_energy[block] = np.einsum("nk,nk->n", sub.coords, sub.coords)
+                sums.energy[block] = np.einsum("nw,nw->n", u, u)
+                sums.smooth_energy[block] = np.einsum("nk,nk->n", sub.coords, sub.coords)
                 step = np.where(sub.linked, u - np.take_along_axis(u, sub.previous, axis=1), 0.0)
-                dw_numerator[block] = np.einsum("nw,nw->n", step, step)
-                total_dof[block] = sub.mask.sum(axis=1) - sub.design_rank
-                smooth_dof[block] = sub.smooth_rank
-    return energy, smooth_energy, dw_numerator, total_dof, smooth_dof
+                sums.dw_numerator[block] = np.einsum("nw,nw->n", step, step)
+                sums.total_dof[block] = sub.mask.sum(axis=1) - sub.design_rank
+                sums.smooth_dof[block] = sub.smooth_rank
+                sums.band_largest[block], sums.band_length[block] = _general_band_scan(sub, x[block], basis, templates)
+    return sums
+
+
+def _general_band_scan(
+    sub: _Subspaces, design: NDArray[np.float64], basis: NDArray[np.float64], templates: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """The band scan of a block of scans with their own designs or usable points.
+
+    Each template is replaced by its least-squares fit ``D a + S b`` on the
+    design and the cosine basis over the scan's usable points (as the bulk
+    path's projection on its basis); whitened and projected off the guard, only
+    ``S b`` remains, with coordinates ``V^T G b`` in the orthonormal basis of
+    :meth:`_Subspaces.smooth_orthonormal` (``G`` the projected Gram matrix,
+    ``V`` its scaled eigenvectors).
+    """
+    mask = sub.mask[:, :, None]
+    p = design.shape[2]
+    columns = np.where(mask, np.concatenate([design, np.broadcast_to(basis, design.shape[:2] + basis.shape[1:])], axis=2), 0.0)
+    smooth_part = np.linalg.pinv(columns)[:, p:, :] @ np.where(mask, templates.T, 0.0)
+    tau = np.einsum("nkj,nkt->njt", sub.smooth_gram @ sub.smooth_vectors, smooth_part)
+    return _band_scan_statistic(
+        np.einsum("nj,njt->nt", sub.coords, tau), np.einsum("njt,njt->nt", tau, tau),
+        np.einsum("njt,njt->nt", tau[:, :, :-1], tau[:, :, 1:]),
+    )
 
 
 def _bulk_energies(
     grid: NDArray[np.float64], resid: NDArray[np.float64], fit: NDArray[np.float64], design: NDArray[np.float64],
     mask: NDArray[np.bool_], basis: NDArray[np.float64], noise: NoiseModel, extra: NDArray[np.float64] | None,
-    outputs: tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64], NDArray[np.int64], NDArray[np.int64]],
-    general: NDArray[np.bool_],
+    templates: NDArray[np.float64], sums: _Sums, general: NDArray[np.bool_],
 ) -> None:
-    """Fill ``outputs`` for the scans the shared-pattern path can take, and clear their ``general`` mark."""
-    energy, smooth_energy, dw_numerator, total_dof, smooth_dof = outputs
+    """Fill ``sums`` for the scans the shared-pattern path can take, and clear their ``general`` mark."""
     for points, rows in _point_patterns(mask):
-        geometry = _PointGeometry.build(grid, design, basis, points, noise.correlation_length_nm)
+        geometry = _PointGeometry.build(grid, design, basis, points, noise.correlation_length_nm, templates)
         if geometry is None:
             continue
         for start in range(0, rows.size, _GROUP_BLOCK):
@@ -757,9 +900,9 @@ def _bulk_energies(
             found = geometry.energies(resid[sub], fit[sub], None if extra is None else extra[sub], noise)
             if found is None:
                 continue
-            energy[sub], smooth_energy[sub], dw_numerator[sub] = found
-            total_dof[sub] = geometry.n_points - geometry.design_rank
-            smooth_dof[sub] = geometry.smooth_rank
+            sums.energy[sub], sums.smooth_energy[sub], sums.dw_numerator[sub], sums.band_largest[sub], sums.band_length[sub] = found
+            sums.total_dof[sub] = geometry.n_points - geometry.design_rank
+            sums.smooth_dof[sub] = geometry.smooth_rank
             general[sub] = False
 
 
@@ -799,6 +942,14 @@ class _PointGeometry:
     tridiagonal (the AR(1) precision), so every scan's ``H`` is a weighted sum
     of the fixed products ``b_t b_t^T`` and ``b_t b_{t+1}^T + b_{t+1} b_t^T``
     of basis rows: one matrix product for a whole block of scans.
+
+    The band templates of the matched-filter scan enter through their
+    coefficients ``c`` on the basis (least squares over the usable points,
+    the same template :func:`_general_band_scan` tests). With ``L_ss`` the
+    smooth block of ``L``, a template's smooth coordinates are ``L_ss^T c_s``,
+    so ``<tau, y_s> = c_s^T (L_ss y_s)`` and
+    ``|tau|**2 = c_s^T (H_ss - L_sg L_sg^T) c_s``: again one matrix product
+    per block of scans, against fixed products of the coefficients.
     """
 
     points: NDArray[np.intp] | slice
@@ -812,11 +963,15 @@ class _PointGeometry:
     precision_diagonal: NDArray[np.float64]
     precision_off: NDArray[np.float64]
     products: NDArray[np.float64]  # (2 n_points - 1, r (r + 1) / 2), lower triangle row by row
+    band_coefficients: NDArray[np.float64]  # (k, n_templates): the band templates on the smooth basis columns
+    band_squares: NDArray[np.float64]  # (k (k + 1) / 2, n_templates): c_a c_b per smooth lower-triangle pair
+    band_neighbours: NDArray[np.float64]  # (k (k + 1) / 2, n_templates - 1): the same for neighbouring templates
+    smooth_pairs: NDArray[np.intp]  # positions of the smooth block's lower triangle in the packed Gram matrix
 
     @classmethod
     def build(
         cls, grid: NDArray[np.float64], design: NDArray[np.float64], basis: NDArray[np.float64], usable: NDArray[np.bool_],
-        correlation_length_nm: float,
+        correlation_length_nm: float, templates: NDArray[np.float64],
     ) -> _PointGeometry | None:
         """The geometry of one point pattern; None when it has too few points for this path."""
         points = np.flatnonzero(usable)
@@ -846,9 +1001,19 @@ class _PointGeometry:
             nested[:, row] * nested[:, column],
             nested[:-1, row] * nested[1:, column] + nested[1:, row] * nested[:-1, column],
         ])
+        band = nested[:, q_g.shape[1] :].T @ templates[:, points].T
+        a, b = np.tril_indices(smooth_rank)
+        twice = np.where(a == b, 1.0, 2.0)[:, None]
+        squares = twice * band[a] * band[b]
+        neighbours = band[a, :-1] * band[b, 1:] + np.where(a == b, 0.0, 1.0)[:, None] * band[b, :-1] * band[a, 1:]
+        g = q_g.shape[1]
+        smooth_pairs = (a + g) * (a + g + 1) // 2 + b + g
         # A run of consecutive points is taken as a slice: no gathered copy of each block.
         span = slice(int(points[0]), int(points[-1]) + 1) if points[-1] - points[0] == points.size - 1 else points
-        return cls(span, points.size, nested, design_rank, q_g.shape[1], smooth_rank, rho, np.sqrt(c2), diagonal, -rho[1:] / c2[1:], products)
+        return cls(
+            span, points.size, nested, design_rank, g, smooth_rank, rho, np.sqrt(c2), diagonal, -rho[1:] / c2[1:], products,
+            band, squares, neighbours, smooth_pairs,
+        )
 
     def _whiten(self, values: NDArray[np.float64], sd: NDArray[np.float64]) -> NDArray[np.float64]:
         """Prais-Winsten whitening of rows over the usable points (as :func:`_whiten`)."""
@@ -860,8 +1025,9 @@ class _PointGeometry:
 
     def energies(
         self, resid: NDArray[np.float64], fit: NDArray[np.float64], extra: NDArray[np.float64] | None, noise: NoiseModel
-    ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]] | None:
-        """Energy off the design, smooth energy and Durbin-Watson numerator of each scan; None if a Gram matrix is not positive definite.
+    ) -> tuple[NDArray[np.float64], ...] | None:
+        """Energy off the design, smooth energy, Durbin-Watson numerator, largest band statistic and band-curve
+        length (:func:`_band_scan_statistic`) of each scan; None if a Gram matrix is not positive definite.
 
         The Cholesky factor of ``[[H, g], [g^T, .]]`` with ``g = A^T w`` holds
         ``y = L^-1 g`` as its last row; it is computed for all scans at once,
@@ -880,7 +1046,8 @@ class _PointGeometry:
         r = self.basis.shape[1]
         row, column = np.tril_indices(r)
         factor = np.zeros((n_scans, r + 1, r + 1))
-        factor.reshape(n_scans, -1)[:, row * (r + 1) + column] = weights @ self.products
+        gram = weights @ self.products
+        factor.reshape(n_scans, -1)[:, row * (r + 1) + column] = gram
         back = w / self.root  # W^T w = S^-1 L^T w, with L the bidiagonal AR(1) whitening
         back[:, :-1] -= self.rho[1:] * w[:, 1:] / self.root[1:]
         factor[:, r, :r] = (back * inverse) @ self.basis
@@ -900,8 +1067,20 @@ class _PointGeometry:
                 coefficients[:, j] = (y[:, j] - np.einsum("nk,nk->n", factor[:, j + 1 : k, j], coefficients[:, j + 1 :])) / factor[:, j, j]
             w = w - self._whiten(coefficients @ self.basis[:, :k].T, sd)
         step = np.diff(w, axis=1)
-        smooth = y[:, self.guard_rank :]
-        return np.einsum("nt,nt->n", w, w), np.einsum("nk,nk->n", smooth, smooth), np.einsum("nt,nt->n", step, step)
+        g = self.guard_rank
+        smooth = y[:, g:]
+        lower_ss = factor[:, g:r, g:r]
+        # Smooth block of the Schur complement H / H_gg = L_ss L_ss^T, packed like the coefficient products.
+        a, b = np.tril_indices(r - g)
+        guard_part = factor[:, g:r, :g]
+        schur = gram[:, self.smooth_pairs] - (guard_part @ guard_part.transpose(0, 2, 1))[:, a, b]
+        largest, length = _band_scan_statistic(
+            np.einsum("nab,nb->na", lower_ss, smooth) @ self.band_coefficients,
+            schur @ self.band_squares, schur @ self.band_neighbours,
+        )
+        return (
+            np.einsum("nt,nt->n", w, w), np.einsum("nk,nk->n", smooth, smooth), np.einsum("nt,nt->n", step, step), largest, length,
+        )
 
 
 _CONTROLLER: list[ThreadpoolController] = []
@@ -929,6 +1108,7 @@ def screen_residuals(
     smooth_terms: int | None = None,
     noise_tolerance: float = 1.5,
     omnibus_share: float = 0.1,
+    band_share: float = 0.45,
     diagnose: bool = True,
     extra_variance: ArrayLike | None = None,
     null_scale: float = 1.0,
@@ -938,11 +1118,11 @@ def screen_residuals(
     ``extra_variance`` (n_scans, n_wavelengths), optional, adds known variance
     to the noise model's at each point, e.g. the absorptivity uncertainty
     times the fitted concentrations, which the residual also holds.
-    ``null_scale`` (>= 1) divides the smooth F statistic: an empirical
-    correction of its null distribution, learned from scans known to be
-    clean (the calibration standards, left out one at a time), for what the
-    noise model cannot capture (an imperfect correlation length, noise in the
-    library itself).
+    ``null_scale`` (>= 1) divides the smooth F statistic (and its square root
+    the band statistic): an empirical correction of their null distribution,
+    learned from scans known to be clean (the calibration standards, left out
+    one at a time), for what the noise model cannot capture (an imperfect
+    correlation length, noise in the library itself).
 
     The whitened residual (see :func:`prewhiten`) is projected off the whitened
     design, leaving ``m - rank`` degrees of freedom of pure noise when the
@@ -954,15 +1134,29 @@ def screen_residuals(
       F(k, m - rank - k) under the null whatever the noise model's overall scale,
       because both energies scale alike. Smooth interferents concentrate their
       energy in ``k`` dimensions instead of ``m``, hence the power.
+    - Band scan (matched filter; Turin 1960): Gaussian bands as wide as the
+      cosine basis resolves, centres a third of a width apart across the
+      grid, each least-squares fitted on the design and cosines, whitened and
+      projected like the residual. The statistic is the largest
+      ``<tau_t, y> / |tau_t|`` (``y`` the residual's smooth coordinates),
+      studentised by the rough part (so the noise scale cancels again) and
+      divided by ``sqrt(null_scale)``. Its p-value is Rice's (1944) upcrossing
+      bound for the maximum over the curve of templates (Hotelling 1939;
+      Davies 1987; Knowles & Siegmund 1989),
+      ``P(t_nu > c) + kappa / (2 pi) (1 + c**2 / nu) ** (-nu / 2)``, with
+      ``kappa`` the curve's length on the unit sphere, found per scan; one
+      sided, because absorbers add. It holds the rate at or below its level
+      (measured: 4.3 % at 5 %).
     - Omnibus test: the whole whitened residual energy (the Q statistic of
       ASTM E1655-style residual checks, here exactly chi-square because whitened,
       so no Box (1954) or Jackson & Mudholkar (1979) approximation is needed)
       against ``noise_tolerance**2`` times chi-square(m - rank): it fires only
       when the residual is much larger than any plausible misestimate of the noise
       model, catching rough structure (spikes, narrow features) and noisy scans.
-    - Combined p-value ``min(p_F / (1 - w), p_Q / w)`` with ``w = omnibus_share``
-      (weighted Bonferroni): the false-alarm rate is at most ``alpha``, and about
-      ``(1 - w) * alpha`` when the noise model is right.
+    - Combined p-value ``min(p_F / (1 - w_B - w_Q), p_B / w_B, p_Q / w_Q)`` with
+      ``w_B = band_share`` and ``w_Q = omnibus_share`` (weighted Bonferroni):
+      the false-alarm rate is at most ``alpha`` (measured about 0.8 ``alpha``
+      with the noise model right, the F and band tests overlapping).
 
     The Durbin-Watson statistic (Durbin & Watson 1950) of the projected whitened
     residual is reported as a whiteness measure alongside, in the spirit of the
@@ -993,6 +1187,9 @@ def screen_residuals(
         Noise-scale error the omnibus test forgives.
     omnibus_share : float, default 0.1
         Share of ``alpha`` spent on the omnibus test (0 < share < 1).
+    band_share : float, default 0.45
+        Share of ``alpha`` spent on the band scan (0 < share < 1 - omnibus_share);
+        the F test takes the rest.
     diagnose : bool, default True
         Whether to match the shapes of flagged scans' residuals.
 
@@ -1021,6 +1218,11 @@ def screen_residuals(
         raise AbsolveError(f"null_scale must be a finite number >= 1, got {null_scale!r}")
     if not (isinstance(omnibus_share, (int, float)) and 0.0 < omnibus_share < 1.0):
         raise AbsolveError(f"omnibus_share must be strictly between 0 and 1, got {omnibus_share!r}")
+    if not (isinstance(band_share, (int, float)) and 0.0 < band_share < 1.0 - omnibus_share):
+        raise AbsolveError(
+            f"band_share must be above 0 and below 1 - omnibus_share ({1.0 - omnibus_share:g}), got {band_share!r}",
+            fix="the smooth F test takes what the two shares leave of alpha",
+        )
     grid = _check_grid(wavelengths)
     noise = _check_noise(noise)
     resid = _as_float("residuals", residuals, 2)
@@ -1041,19 +1243,26 @@ def screen_residuals(
 
     # A stack of identical designs is a shared one: the same subspaces, and the bulk path.
     shared_design = x.strides[0] == 0 or bool(np.all(x == x[:1]))
-    energy, smooth_energy, dw_numerator, total_dof, smooth_dof = _energies(grid, resid, fit, x, mask, basis, noise, extra, shared_design)
+    templates = _band_templates(grid, terms)
+    sums = _energies(grid, resid, fit, x, mask, basis, noise, extra, shared_design, templates)
 
-    rough_dof = total_dof - smooth_dof
+    smooth_dof = sums.smooth_dof
+    rough_dof = sums.total_dof - smooth_dof
     testable = (rough_dof >= _MIN_ROUGH_DOF) & (smooth_dof >= 1)
-    rough_energy = np.maximum(energy - smooth_energy, 0.0)
+    rough_energy = np.maximum(sums.energy - sums.smooth_energy, 0.0)
+    smooth_share = 1.0 - omnibus_share - band_share
     with np.errstate(divide="ignore", invalid="ignore"):
-        statistic = np.where(testable, (smooth_energy / smooth_dof) / (rough_energy / rough_dof), np.nan) / null_scale
-        smooth_p = np.where(testable, scipy.stats.f.sf(statistic, smooth_dof, rough_dof), np.nan)
-        omnibus_p = np.where(testable, scipy.stats.chi2.sf(energy / noise_tolerance**2, total_dof), np.nan)
         noise_ratio = np.where(testable, np.sqrt(rough_energy / rough_dof), np.nan)
-        durbin_watson = np.where(testable, dw_numerator / energy, np.nan)
-    p_value = np.minimum(1.0, np.minimum(smooth_p / (1.0 - omnibus_share), omnibus_p / omnibus_share))
+        statistic = np.where(testable, (sums.smooth_energy / smooth_dof) / (rough_energy / rough_dof), np.nan) / null_scale
+        smooth_p = np.where(testable, scipy.stats.f.sf(statistic, smooth_dof, rough_dof), np.nan)
+        # The same null correction as the F ratio's, on the scale of a standard deviation.
+        band_statistic = sums.band_largest / (noise_ratio * np.sqrt(null_scale))
+        band_p = np.where(testable, _band_scan_p(band_statistic, sums.band_length, rough_dof), np.nan)
+        omnibus_p = np.where(testable, scipy.stats.chi2.sf(sums.energy / noise_tolerance**2, sums.total_dof), np.nan)
+        durbin_watson = np.where(testable, sums.dw_numerator / sums.energy, np.nan)
+    p_value = np.minimum(1.0, np.minimum.reduce([smooth_p / smooth_share, band_p / band_share, omnibus_p / omnibus_share]))
     flagged = testable & (p_value < alpha)
+    smooth_found = (smooth_p < smooth_share * alpha) | (band_p < band_share * alpha)
 
     diagnoses: list[Diagnosis | None] = [None] * n_scans
     if diagnose and flagged.any():
@@ -1066,10 +1275,10 @@ def screen_residuals(
                 block = rows[start : start + _DIAGNOSIS_BLOCK]
                 sub = _subspaces(grid, resid[block], fit[block], x[block], mask[block], basis, noise, None if extra is None else extra[block])
                 for position, i in enumerate(block.tolist()):
-                    diagnoses[i] = _diagnose(grid, fit[i], sub.one(position), smooth_p[i] < (1.0 - omnibus_share) * alpha, fixed)
+                    diagnoses[i] = _diagnose(grid, fit[i], sub.one(position), bool(smooth_found[i]), fixed)
     method = (
-        f"whitened smooth-subspace F test ({terms} cosine terms) + omnibus chi-square at {noise_tolerance:g}x "
-        f"modelled noise, weighted Bonferroni ({1 - omnibus_share:g}/{omnibus_share:g})"
+        f"whitened smooth-subspace F test ({terms} cosine terms) + matched-filter band scan + omnibus chi-square at "
+        f"{noise_tolerance:g}x modelled noise, weighted Bonferroni ({smooth_share:g}/{band_share:g}/{omnibus_share:g})"
     )
     return Screening(
         statistic=statistic,
@@ -1084,6 +1293,7 @@ def screen_residuals(
         durbin_watson=durbin_watson,
         smooth_dof=smooth_dof,
         rough_dof=rough_dof,
+        band_p=band_p,
     )
 
 

@@ -35,6 +35,7 @@ def _flag_rates() -> dict[str, float]:
         bands = np.array([band_spectrum(GRID, [Band(centre, 15.0, 1.0)]) for centre in rng.uniform(450.0, 650.0, N_SCANS)])
         cases = {
             "clean": clean,
+            "band 0.5 %": clean + 0.005 * peak * bands,
             "band 1 %": clean + 0.01 * peak * bands,
             "band 2 %": clean + 0.02 * peak * bands,
             "shift 0.5 nm": np.array([np.interp(GRID, GRID + 0.5, row) for row in clean]),
@@ -51,8 +52,13 @@ def test_false_alarms_and_power_with_learned_libraries() -> None:
     rates = _flag_rates()
     # 360 clean scans: a 5 % rate has a binomial sd of 1.1 %, so 9 % is more than three sd above it.
     assert rates["clean"] <= 0.09, rates
-    # Measured when written: clean 3.6 %, band 1 % 73 %, band 2 % 98 %, shift 94 %, turbidity 74 %.
-    assert rates["band 1 %"] >= 0.5, rates
-    assert rates["band 2 %"] >= 0.9, rates
-    assert rates["shift 0.5 nm"] >= 0.8, rates
-    assert rates["turbidity"] >= 0.6, rates
+    # Measured when written: clean 1.7 %, band 0.5 % 47.5 %, band 1 % 81 %, band 2 % 99 %, shift 93 %,
+    # turbidity 78 % (before the band scan: clean 3.6 %, band 0.5 % about 40 %, 1 % 73 %, 2 % 98 %,
+    # shift 94 %, turbidity 74 %). A test that knew each band's exact shape and place would catch
+    # 81 % of the 0.5 % bands at alpha = 0.05 but only 54 % at the z of 3.0 that scanning ~100 band
+    # positions costs: much of a band like a library spectrum is absorbed by the fit (docs/screening.md).
+    assert rates["band 0.5 %"] >= 0.42, rates
+    assert rates["band 1 %"] >= 0.75, rates
+    assert rates["band 2 %"] >= 0.95, rates
+    assert rates["shift 0.5 nm"] >= 0.85, rates
+    assert rates["turbidity"] >= 0.7, rates
