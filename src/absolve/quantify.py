@@ -61,7 +61,7 @@ DEFAULT_CEILING = 2.0
 VIF_LIMIT = 10.0
 _COVERAGE_PROBABILITY = 0.9545  # the probability that k = 2 gives for a normal distribution (GUM 6.2.2)
 _CHUNK = 1024  # scans per block of per-point work, bounding memory (the covariance step holds some 10 values per point)
-_SCREEN_BLOCK = 2048  # scans per call of the interferent screen (its working arrays are some 20 times the block's values)
+_SCREEN_BLOCK = 1024  # scans per call of the interferent screen (its working arrays are some 20 times the block's values)
 _MIN_SCREEN_POINTS = 10  # fewer wavelengths leave no room for a residual test
 
 

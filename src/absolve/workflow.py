@@ -35,7 +35,7 @@ __all__ = ["FIGURE_FOLDER", "Progress", "QuantifyRequest", "QuantifyOutcome", "r
 
 RESULT_FILES = ("results.csv", "fit.csv", "fitted.csv", "residuals.csv", "results.json", "report.html")
 FIGURE_FOLDER = "figures"
-CHUNK_SCANS = 4096  # scans fitted, written and let go at a time: a few tens of MB of spectra
+CHUNK_SCANS = 2048  # scans fitted, written and let go at a time (their spectra: a few MB to tens of MB)
 
 Progress = Callable[[str, int, int], None]
 """Told ``(stage, done, total)`` as a run goes on (``total`` 0 when a step cannot count)."""

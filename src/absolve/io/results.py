@@ -270,32 +270,21 @@ def write_results_in_chunks(
             handles = {name: stack.enter_context(open(path, "w", encoding="utf-8", newline="")) for name, path in temporary.items()}
             names: list[str] = []
             parts: dict[str, list[Path]] = {"fitted.csv": [], "residuals.csv": []}
-            first: MixtureResult | None = None
+            wavelengths: NDArray[np.float64] | None = None
             for index, chunk in enumerate(chunks):
-                head = first is None
-                first = first or chunk
+                _append_chunk(chunk, index, wavelengths is None, handles, scratch, parts)
+                wavelengths = chunk.wavelengths
                 names.extend(chunk.scan_names)
-                for name, write in (("results.csv", results_csv), ("fit.csv", fit_csv)):
-                    if name in handles:
-                        text = write(chunk)
-                        handles[name].write(text if head else text[text.index("\n") + 1 :])
-                for name, which in (("fitted.csv", "fitted"), ("residuals.csv", "residuals")):
-                    if name in handles:
-                        part = scratch / f"{which}-{index:06d}.part"
-                        values = chunk.fitted if which == "fitted" else chunk.residuals
-                        with open(part, "w", encoding="utf-8", newline="") as stream:
-                            stream.writelines(fixed_decimals(values[:, j], "", "scaled") + "\n" for j in range(values.shape[1]))
-                        parts[name].append(part)
-                if "results.json" in handles:
-                    handles["results.json"].write((_json_head(chunk) if head else ",\n") + ",\n".join(scan_json_lines(chunk)))
-            if first is None:
+                # Let go of the chunk before the next is made: one chunk's spectra at a time.
+                del chunk
+            if wavelengths is None:
                 raise AbsolveError("no scans to write", fix="give at least one scan")
             if "results.json" in handles:
                 tail = {"provenance": provenance, **(json_extra or {})}
                 handles["results.json"].write("\n], " + json.dumps(tail, indent=1, allow_nan=False)[1:] + "\n")
             for name in ("fitted.csv", "residuals.csv"):
                 if name in handles:
-                    _join_columns(handles[name], "wavelength_nm", names, first.wavelengths, parts[name], stack)
+                    _join_columns(handles[name], "wavelength_nm", names, wavelengths, parts[name], stack)
             for handle in handles.values():
                 handle.close()
             for name, path in temporary.items():
@@ -305,6 +294,27 @@ def write_results_in_chunks(
     except OSError as error:
         raise AbsolveError(f"cannot write the results in {folder}: {error.strerror}", fix="check there is free space on the disk and the folder is writable") from None
     return len(names)
+
+
+def _append_chunk(
+    chunk: MixtureResult, index: int, head: bool, handles: Mapping[str, TextIO], scratch: Path, parts: dict[str, list[Path]]
+) -> None:
+    """Write one chunk: rows of the long tables and results.json, a column block of each wide table."""
+    for name, write in (("results.csv", results_csv), ("fit.csv", fit_csv)):
+        if name in handles:
+            text = write(chunk)
+            handles[name].write(text if head else text[text.index("\n") + 1 :])
+    for name, which in (("fitted.csv", "fitted"), ("residuals.csv", "residuals")):
+        if name in handles:
+            part = scratch / f"{which}-{index:06d}.part"
+            values = chunk.fitted if which == "fitted" else chunk.residuals
+            if values is None:
+                raise ValueError(f"chunk {index} holds no {which} spectra")
+            with open(part, "w", encoding="utf-8", newline="") as stream:
+                stream.writelines(fixed_decimals(values[:, j], "", "scaled") + "\n" for j in range(values.shape[1]))
+            parts[name].append(part)
+    if "results.json" in handles:
+        handles["results.json"].write((_json_head(chunk) if head else ",\n") + ",\n".join(scan_json_lines(chunk)))
 
 
 def _join_columns(handle: TextIO, first_header: str, names: Sequence[str], wavelengths: NDArray[np.float64], parts: list[Path], stack: contextlib.ExitStack) -> None:
