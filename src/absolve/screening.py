@@ -66,6 +66,7 @@ Statist. Rev. 57, 205-220 (the maximum over a curve of templates).
 from __future__ import annotations
 
 import dataclasses
+import functools
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Literal
@@ -1414,6 +1415,14 @@ def _match(family: _Family, adjoint: NDArray[np.float64], coords: NDArray[np.flo
     )
 
 
+@functools.lru_cache(maxsize=8)
+def _null_points(n_points: int) -> NDArray[np.float64]:
+    """200 fixed draws of white noise on ``n_points`` points (made once per length: a batch has few)."""
+    draws = np.random.default_rng(0).standard_normal((200, n_points))
+    draws.flags.writeable = False
+    return draws
+
+
 def _diagnose(
     grid: NDArray[np.float64], fitted: NDArray[np.float64], sub: _Subspaces, smooth_found: bool,
     fixed: list[_Family],
@@ -1431,7 +1440,9 @@ def _diagnose(
     filled = np.interp(grid, grid[mask], fitted[mask])
     adjoint = _whiten_adjoint(basis, sub.sd[0], sub.rho[0], sub.previous[0], sub.linked[0], mask)
     # Fixed pseudo-random draws keep the result reproducible; they only set the look-elsewhere penalty.
-    null_draws = np.random.default_rng(0).standard_normal((200, basis.shape[1])) * np.sqrt(noise_var)
+    # Drawn per point and projected, so that they do not depend on how the smooth basis happens to be
+    # rotated (which varies with the other scans it was made with).
+    null_draws = (_null_points(basis.shape[0]) @ basis) * np.sqrt(noise_var)
     matches = [_match(f, adjoint, coords, noise_var, null_draws) for f in fixed + _scan_families(grid, filled)]
     # Penalise each family by what its best shape explains of pure noise, so flexible families do not win on noise.
     ranked = sorted(matches, key=lambda m: m.explained - m.null_explained, reverse=True)
