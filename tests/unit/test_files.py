@@ -101,7 +101,8 @@ def test_write_all_failure_midway_leaves_no_file(tmp_path: Path, monkeypatch: py
     with pytest.raises(AbsolveError, match="Input/output error"):
         write_all(planned, force=False)
     assert len(calls) == 2
-    assert _listing(tmp_path / "out") == []  # the first file is removed again, the second never appeared
+    # The first file is removed again, the second never appeared, and the folder made for them is gone.
+    assert not (tmp_path / "out").exists()
 
 
 def test_write_all_interrupted_midway_leaves_no_file(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
@@ -130,3 +131,16 @@ def test_file_sha256_matches_hashlib(tmp_path: Path) -> None:
     (tmp_path / "empty").write_bytes(b"")
     # SHA-256 of the empty message (from memory).
     assert file_sha256(tmp_path / "empty") == "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855"
+
+
+def test_a_failure_keeps_folders_that_existed_before(tmp_path: Path) -> None:
+    kept = tmp_path / "kept"
+    kept.mkdir()
+    with pytest.raises(KeyboardInterrupt):
+        with files.folders_removed_on_failure([kept / "a" / "b", kept]):
+            assert (kept / "a" / "b").is_dir()
+            raise KeyboardInterrupt
+    assert kept.is_dir() and not (kept / "a").exists()
+    with files.folders_removed_on_failure([kept / "c"]):
+        pass
+    assert (kept / "c").is_dir()

@@ -2,10 +2,11 @@
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import os
 import tempfile
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 
 from ..errors import AbsolveError
@@ -96,6 +97,34 @@ def _umask() -> int:
     return mask
 
 
+@contextlib.contextmanager
+def folders_removed_on_failure(folders: Iterable[str | os.PathLike[str]]) -> Iterator[None]:
+    """Create ``folders`` (and missing parents); if the block then fails, remove those it created that are left empty.
+
+    A failed or interrupted run leaves no trace, not even an empty results folder.
+    """
+    folders = [Path(folder) for folder in folders]
+    created = sorted({path for folder in folders for path in (folder, *folder.parents) if not path.exists()}, key=lambda path: -len(path.parts))
+    for folder in folders:
+        try:
+            Path(folder).mkdir(parents=True, exist_ok=True)
+        except OSError as error:
+            _remove_empty(created)
+            raise AbsolveError(f"cannot write into {folder}: {error.strerror}", fix="check the folder exists and is writable") from None
+    try:
+        yield
+    except BaseException:
+        _remove_empty(created)
+        raise
+
+
+def _remove_empty(folders: list[Path]) -> None:
+    """Remove each of ``folders`` (deepest first) that is empty; leave the others."""
+    for folder in folders:
+        with contextlib.suppress(OSError):
+            folder.rmdir()
+
+
 def write_all(files: Mapping[Path, Content], *, force: bool, staged: Sequence[tuple[Path, Path]] = ()) -> None:
     """Write several files after checking none would be overwritten unasked: all of them, or none.
 
@@ -112,10 +141,16 @@ def write_all(files: Mapping[Path, Content], *, force: bool, staged: Sequence[tu
     """
     targets = [Path(target) for _, target in staged] + [Path(path) for path in files]
     check_writable(targets, force=force)
-    ready: list[Path] = [Path(temporary) for temporary, _ in staged]
+    with folders_removed_on_failure([target.parent for target in targets]):
+        _write_and_rename(files, targets, [Path(temporary) for temporary, _ in staged], force)
+
+
+def _write_and_rename(files: Mapping[Path, Content], targets: list[Path], ready: list[Path], force: bool) -> None:
+    """Stage every file not yet ``ready`` beside its target, then rename all into place; undo on failure."""
+    staged = len(ready)
     replaced: list[Path] = []
     try:
-        for target, content in zip(targets[len(staged):], files.values()):
+        for target, content in zip(targets[staged:], files.values()):
             ready.append(_stage(target, content))
         for temporary, target in zip(ready, targets):
             try:

@@ -27,7 +27,7 @@ from numpy.typing import NDArray
 
 from ..errors import AbsolveError
 from ..quantify import MixtureResult
-from .files import Content, _umask, check_writable, write_all
+from .files import Content, _umask, check_writable, folders_removed_on_failure, write_all
 from .tables import csv_field, fixed_decimals, wide_table_lines
 
 if TYPE_CHECKING:
@@ -262,9 +262,9 @@ def write_results_in_chunks(
     if unknown:
         raise AbsolveError(f"cannot stream {unknown[0]!r}", fix="choose among " + ", ".join(STREAMED_FILES))
     check_writable(list(targets.values()), force=force)
-    folder = _common_folder(targets.values())
+    folder = Path(next(iter(targets.values()))).parent
     try:
-        with contextlib.ExitStack() as stack:
+        with folders_removed_on_failure([folder]), contextlib.ExitStack() as stack:
             scratch = Path(stack.enter_context(tempfile.TemporaryDirectory(prefix=".absolve-", dir=folder)))
             temporary = {name: scratch / name for name in targets}
             handles = {name: stack.enter_context(open(path, "w", encoding="utf-8", newline="")) for name, path in temporary.items()}
@@ -325,16 +325,6 @@ def _join_columns(handle: TextIO, first_header: str, names: Sequence[str], wavel
         for wavelength in wavelengths:
             pieces = [block.readline().rstrip("\n") for block in blocks]
             handle.write(np.format_float_positional(wavelength, trim="-") + "," + ",".join(pieces) + "\n")
-
-
-def _common_folder(paths: Iterable[Path]) -> Path:
-    """The folder of the first target, created if needed (scratch files go beside the results, on the same disk)."""
-    folder = Path(next(iter(paths))).parent
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as error:
-        raise AbsolveError(f"cannot write into {folder}: {error.strerror}", fix="check the folder is writable") from None
-    return folder
 
 
 def prediction_results_csv(prediction: InversePrediction) -> str:
