@@ -71,7 +71,12 @@ class QuantifyRequest:
 
 @dataclass(frozen=True)
 class QuantifyOutcome:
-    """What a quantification run produced: the result and the texts to show."""
+    """What a quantification run produced: the result and the texts to show.
+
+    A library run's result holds every per-scan number but not the fitted and
+    residual spectra (:meth:`MixtureResult.without_spectra`): those went to
+    fitted.csv and residuals.csv chunk by chunk.
+    """
 
     result: MixtureResult | InversePrediction
     text: str
