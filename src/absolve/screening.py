@@ -579,9 +579,15 @@ def _whiten(
     """Prais-Winsten whitening of (n, n_wl) or (n, n_wl, q) values with point standard deviations ``sd``; 0 at unusable points."""
     if data.ndim == 3:
         sd, rho, mask, previous = sd[..., None], rho[..., None], mask[..., None], previous[..., None]
-    z = np.where(mask, data, 0.0) / sd
-    z_previous = np.take_along_axis(z, np.broadcast_to(previous, z.shape), axis=1)
-    return np.where(mask, (z - rho * z_previous) / np.sqrt(1.0 - rho**2), 0.0)
+    z = np.where(mask, data, 0.0)
+    z /= sd
+    # In place: temporaries of a block's size cost several times the arithmetic (fresh pages).
+    out = np.take_along_axis(z, np.broadcast_to(previous, z.shape), axis=1)
+    out *= rho
+    np.subtract(z, out, out=out)
+    out /= np.sqrt(1.0 - rho**2)
+    np.copyto(out, 0.0, where=~mask)
+    return out
 
 
 def _unwhiten(
@@ -666,19 +672,20 @@ class _Subspaces:
             for value in (getattr(self, item.name),)
         })
 
-    def smooth_orthonormal(self, i: int) -> NDArray[np.float64]:
-        """Orthonormal basis (n_wl, k; zero columns beyond the rank) of scan ``i``'s smooth subspace."""
-        projected = self.white_smooth[i] - self.guard_basis[i] @ (self.guard_basis[i].T @ self.white_smooth[i])
-        return projected @ self.smooth_vectors[i]
+    def smooth_orthonormal(self) -> NDArray[np.float64]:
+        """Orthonormal bases (n, n_wl, k; zero columns beyond the rank) of the scans' smooth subspaces."""
+        overlap = self.guard_basis.transpose(0, 2, 1) @ self.white_smooth
+        return (self.white_smooth - self.guard_basis @ overlap) @ self.smooth_vectors
 
 
 def _smooth_projection(design: NDArray[np.float64], basis: NDArray[np.float64], mask: NDArray[np.bool_]) -> NDArray[np.float64]:
     """Least-squares projection of every design column onto the smooth basis over each scan's usable points."""
-    weights = mask.astype(np.float64)
-    gram = np.einsum("wk,nw,wl->nkl", basis, weights, basis)
-    rhs = np.einsum("wk,nw,nwp->nkp", basis, weights, design)
+    # Matrix products: a three-operand einsum does not use BLAS and is many times slower.
+    weighted = basis.T * mask[:, None, :]
+    gram = weighted @ basis
+    rhs = weighted @ design
     coefficients = np.linalg.pinv(gram, hermitian=True) @ rhs
-    return np.einsum("wk,nkp->nwp", basis, coefficients)
+    return basis @ coefficients
 
 
 def _subspaces(
@@ -1021,7 +1028,11 @@ class _PointGeometry:
         z = values / sd
         out = np.empty_like(z)
         out[:, 0] = z[:, 0]
-        out[:, 1:] = (z[:, 1:] - self.rho[1:] * z[:, :-1]) / self.root[1:]
+        # In place: temporaries of a block's size cost several times the arithmetic (fresh pages).
+        linked = out[:, 1:]
+        np.multiply(z[:, :-1], self.rho[1:], out=linked)
+        np.subtract(z[:, 1:], linked, out=linked)
+        linked /= self.root[1:]
         return out
 
     def energies(
@@ -1042,7 +1053,8 @@ class _PointGeometry:
         n_scans, n = w.shape
         inverse = 1.0 / sd
         weights = np.empty((n_scans, 2 * n - 1))
-        weights[:, :n] = self.precision_diagonal * inverse**2
+        np.square(inverse, out=weights[:, :n])
+        weights[:, :n] *= self.precision_diagonal
         weights[:, n:] = self.precision_off * (inverse[:, :-1] * inverse[:, 1:])
         r = self.basis.shape[1]
         row, column = np.tril_indices(r)
@@ -1050,7 +1062,9 @@ class _PointGeometry:
         gram = weights @ self.products
         factor.reshape(n_scans, -1)[:, row * (r + 1) + column] = gram
         back = w / self.root  # W^T w = S^-1 L^T w, with L the bidiagonal AR(1) whitening
-        back[:, :-1] -= self.rho[1:] * w[:, 1:] / self.root[1:]
+        ahead = self.rho[1:] * w[:, 1:]
+        ahead /= self.root[1:]
+        back[:, :-1] -= ahead
         factor[:, r, :r] = (back * inverse) @ self.basis
         for j in range(r):
             pivot = factor[:, j, j] - np.einsum("nk,nk->n", factor[:, j, :j], factor[:, j, :j])
@@ -1275,8 +1289,8 @@ def screen_residuals(
             for start in range(0, rows.size, _DIAGNOSIS_BLOCK):
                 block = rows[start : start + _DIAGNOSIS_BLOCK]
                 sub = _subspaces(grid, resid[block], fit[block], x[block], mask[block], basis, noise, None if extra is None else extra[block])
-                for position, i in enumerate(block.tolist()):
-                    diagnoses[i] = _diagnose(grid, fit[i], sub.one(position), bool(smooth_found[i]), fixed)
+                for i, diagnosis in zip(block.tolist(), _diagnose_block(grid, fit[block], sub, smooth_found[block], fixed), strict=True):
+                    diagnoses[i] = diagnosis
     method = (
         f"whitened smooth-subspace F test ({terms} cosine terms) + matched-filter band scan + omnibus chi-square at "
         f"{noise_tolerance:g}x modelled noise, weighted Bonferroni ({smooth_share:g}/{band_share:g}/{omnibus_share:g})"
@@ -1312,7 +1326,16 @@ class _Family:
 
 
 def _fixed_families(grid: NDArray[np.float64]) -> list[_Family]:
-    """Shapes that do not depend on the scan: Gaussian bands on a grid of centres and widths, power-law scattering."""
+    """Shapes that do not depend on the scan: Gaussian bands on a grid of centres and widths, power-law scattering.
+
+    Made once per grid (a batch screened in blocks asks for the same ones each time); read-only.
+    """
+    return _fixed_families_on(grid.tobytes())
+
+
+@functools.lru_cache(maxsize=4)
+def _fixed_families_on(grid_bytes: bytes) -> list[_Family]:
+    grid = np.frombuffer(grid_bytes, dtype=np.float64)
     span = grid[-1] - grid[0]
     step = max(float(np.median(np.diff(grid))), span / 150.0)
     centres = np.arange(grid[0], grid[-1] + 0.5 * step, step)
@@ -1321,6 +1344,8 @@ def _fixed_families(grid: NDArray[np.float64]) -> list[_Family]:
     bands = np.exp(-0.5 * ((grid[None, :] - c[:, None]) / w[:, None]) ** 2)
     exponents = np.array(_SCATTER_EXPONENTS)
     scatter = (grid[None, :] / grid[0]) ** (-exponents[:, None])
+    for array in (bands, scatter, c, w, exponents):
+        array.flags.writeable = False
     return [
         _Family("foreign-band", bands, {"center_nm": c, "width_nm": w}, True),
         _Family("scatter", scatter, {"exponent": exponents}, True),
@@ -1343,17 +1368,18 @@ def _whiten_adjoint(
     g: NDArray[np.float64], sd: NDArray[np.float64], rho: NDArray[np.float64], previous: NDArray[np.intp],
     linked: NDArray[np.bool_], mask: NDArray[np.bool_],
 ) -> NDArray[np.float64]:
-    """``W.T @ g`` for one scan's whitening matrix W, g of shape (n_wl, k).
+    """``W.T @ g`` for each scan's whitening matrix W, g of shape (n, n_wl, k).
 
     Whitening many templates ``t`` and taking coordinates ``G.T @ W @ t`` is the
     same as ``(W.T @ G).T @ t``: one pass over the k basis vectors instead of one
     per template.
     """
     root = np.sqrt(1.0 - rho**2)
-    out = np.where(mask[:, None], g / (sd * root)[:, None], 0.0)
-    j = np.flatnonzero(linked)
+    out = np.where(mask[..., None], g / (sd * root)[..., None], 0.0)
+    scan, j = np.nonzero(linked)
+    before = previous[scan, j]
     # Each point is the previous usable point of at most one other, so the indices do not repeat.
-    out[previous[j]] -= (rho[j] / (root[j] * sd[previous[j]]))[:, None] * g[j]
+    out[scan, before] -= (rho[scan, j] / (root[scan, j] * sd[scan, before]))[:, None] * g[scan, j]
     return out
 
 
@@ -1392,17 +1418,25 @@ class _Match:
     detail: dict[str, float | str]
 
 
-def _match(family: _Family, adjoint: NDArray[np.float64], coords: NDArray[np.float64], noise_var: float,
+def _match(family: _Family, tau: NDArray[np.float64], coords: NDArray[np.float64], noise_var: float,
            null_draws: NDArray[np.float64]) -> _Match:
-    """Best shape of a family in the smooth unexplained subspace (least squares, one amplitude)."""
-    tau = family.shapes @ adjoint  # (n_shapes, k): coordinates of the whitened shapes
-    norm2 = np.einsum("sk,sk->s", tau, tau)
+    """Best shape of a family in the smooth unexplained subspace (least squares, one amplitude).
+
+    ``tau`` (k, n_shapes) holds the coordinates of the whitened shapes, one
+    column each, in the orthonormal basis that ``coords`` (k,) and
+    ``null_draws`` (n_draws, k) are given in.
+    """
+    norm2 = np.einsum("ks,ks->s", tau, tau)
     valid = norm2 > _RANK_TOL * max(float(norm2.max()), np.finfo(float).tiny)
     scale = np.where(valid, 1.0 / np.sqrt(np.where(valid, norm2, 1.0)), 0.0)
-    z = (tau @ coords) * scale  # signed amplitude z-score of each shape (in units of the noise sd)
-    z_null = (tau @ null_draws.T) * scale[:, None]
+    z = (coords @ tau) * scale  # signed amplitude z-score of each shape (in units of the noise sd)
+    # The largest squared z-score of each null draw is the square of its largest z (clipped at 0 for
+    # one-signed families) or of its smallest: no need to square the whole draws x shapes table.
+    z_null = null_draws @ (tau * scale)
+    top = np.maximum(z_null.max(axis=1), 0.0)
+    null_best = top**2 if family.positive else np.maximum(top, -z_null.min(axis=1)) ** 2
     if family.positive:
-        z, z_null = np.maximum(z, 0.0), np.maximum(z_null, 0.0)
+        z = np.maximum(z, 0.0)
     best = int(np.argmax(z**2))
     amplitude = float(z[best] * scale[best]) if valid[best] else 0.0
     detail = {name: (str(v[best]) if v.dtype.kind in "US" else float(v[best])) for name, v in family.parameters.items()}
@@ -1410,7 +1444,7 @@ def _match(family: _Family, adjoint: NDArray[np.float64], coords: NDArray[np.flo
     if family.kind == "wavelength-shift":
         detail.update(shift_nm=amplitude, shift_se_nm=se)
     return _Match(
-        family.kind, float(z[best] ** 2), float(np.mean(np.max(z_null**2, axis=0))), amplitude, se,
+        family.kind, float(z[best] ** 2), float(np.mean(null_best)), amplitude, se,
         family.shapes[best], detail,
     )
 
@@ -1423,13 +1457,50 @@ def _null_points(n_points: int) -> NDArray[np.float64]:
     return draws
 
 
-def _diagnose(
-    grid: NDArray[np.float64], fitted: NDArray[np.float64], sub: _Subspaces, smooth_found: bool,
+def _diagnose_block(
+    grid: NDArray[np.float64], fitted: NDArray[np.float64], sub: _Subspaces, smooth_found: NDArray[np.bool_],
     fixed: list[_Family],
+) -> list[Diagnosis]:
+    """Diagnoses of a block of flagged scans (``fitted`` and ``smooth_found`` one row per scan of ``sub``).
+
+    A shape's coordinates in a scan's smooth subspace are ``adjoint.T @ shape``
+    (:func:`_whiten_adjoint`); those of the fixed shapes come from one matrix
+    product for the whole block, and the null draws' from another: per scan the
+    products are too narrow (a few dozen columns) for BLAS to run near its speed.
+    """
+    bases = sub.smooth_orthonormal()
+    adjoints = _whiten_adjoint(bases, sub.sd, sub.rho, sub.previous, sub.linked, sub.mask)
+    n_scans, n_wl, k = bases.shape
+    stacked = np.vstack([family.shapes for family in fixed])
+    fixed_tau = (adjoints.transpose(0, 2, 1).reshape(n_scans * k, n_wl) @ stacked.T).reshape(n_scans, k, -1)
+    edges = np.cumsum([0] + [family.shapes.shape[0] for family in fixed])
+    null_points = _null_points(n_wl)
+    null_basis = (null_points @ bases.transpose(1, 0, 2).reshape(n_wl, n_scans * k)).reshape(-1, n_scans, k)
+    scan_families = [
+        _scan_families(grid, np.interp(grid, grid[mask], row[mask])) for row, mask in zip(fitted, sub.mask, strict=True)
+    ]
+    scan_shapes = np.stack([np.vstack([family.shapes for family in families]) for families in scan_families])
+    scan_tau = adjoints.transpose(0, 2, 1) @ scan_shapes.transpose(0, 2, 1)
+    scan_edges = np.cumsum([0] + [family.shapes.shape[0] for family in scan_families[0]])
+    diagnoses = []
+    for i in range(n_scans):
+        taus = [fixed_tau[i, :, a:b] for a, b in zip(edges[:-1], edges[1:])]
+        taus += [scan_tau[i, :, a:b] for a, b in zip(scan_edges[:-1], scan_edges[1:])]
+        diagnoses.append(_diagnose(grid, sub.one(i), bases[i], fixed + scan_families[i], taus, null_basis[:, i], bool(smooth_found[i])))
+    return diagnoses
+
+
+def _diagnose(
+    grid: NDArray[np.float64], sub: _Subspaces, basis: NDArray[np.float64], families: list[_Family],
+    taus: list[NDArray[np.float64]], null_basis: NDArray[np.float64], smooth_found: bool,
 ) -> Diagnosis:
-    """Match the smooth unexplained residual of one scan against the shape families."""
+    """Match the smooth unexplained residual of one scan against the shape families.
+
+    ``basis`` (n_wl, k) is the scan's smooth orthonormal basis, ``taus`` the
+    coordinates in it of each family's shapes (k, n_shapes) and ``null_basis``
+    (n_draws, k) those of the fixed white-noise draws of :func:`_null_points`.
+    """
     mask = sub.mask[0]
-    basis = sub.smooth_orthonormal(0)
     coords = sub.coords[0]
     u = sub.residual[0]
     smooth_energy = float(coords @ coords)
@@ -1437,13 +1508,11 @@ def _diagnose(
     # Residual noise variance in whitened units, measured on the rough part so a noise-model scale error cancels.
     noise_var = max(float(u @ u) - smooth_energy, 0.0) / max(rough_dof, 1)
     smooth_residual = _unwhiten(basis @ coords, sub.sd[0], sub.rho[0], mask)
-    filled = np.interp(grid, grid[mask], fitted[mask])
-    adjoint = _whiten_adjoint(basis, sub.sd[0], sub.rho[0], sub.previous[0], sub.linked[0], mask)
     # Fixed pseudo-random draws keep the result reproducible; they only set the look-elsewhere penalty.
     # Drawn per point and projected, so that they do not depend on how the smooth basis happens to be
     # rotated (which varies with the other scans it was made with).
-    null_draws = (_null_points(basis.shape[0]) @ basis) * np.sqrt(noise_var)
-    matches = [_match(f, adjoint, coords, noise_var, null_draws) for f in fixed + _scan_families(grid, filled)]
+    null_draws = null_basis * np.sqrt(noise_var)
+    matches = [_match(f, tau, coords, noise_var, null_draws) for f, tau in zip(families, taus, strict=True)]
     # Penalise each family by what its best shape explains of pure noise, so flexible families do not win on noise.
     ranked = sorted(matches, key=lambda m: m.explained - m.null_explained, reverse=True)
     best, runner = ranked[0], ranked[1]
