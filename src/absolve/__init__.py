@@ -27,6 +27,8 @@ AbsolveError
 """
 
 import importlib
+import sys
+import types
 from importlib.metadata import PackageNotFoundError, version
 from typing import TYPE_CHECKING, Any
 
@@ -81,6 +83,19 @@ def __getattr__(name: str) -> Any:
 
 def __dir__() -> list[str]:
     return sorted({*globals(), *_HOMES})
+
+
+class _Package(types.ModuleType):
+    """The package module: importing a submodule named like a public function (``absolve.quantify``)
+    must not replace the function, as the import system would by setting the attribute."""
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        if name in _HOMES and isinstance(value, types.ModuleType):
+            return
+        super().__setattr__(name, value)
+
+
+sys.modules[__name__].__class__ = _Package
 
 
 if TYPE_CHECKING:

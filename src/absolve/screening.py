@@ -72,10 +72,8 @@ from dataclasses import dataclass, field
 from typing import Any, Literal
 
 import numpy as np
-import scipy.integrate
 import scipy.linalg
-import scipy.optimize
-import scipy.stats
+import scipy.special
 from numpy.typing import ArrayLike, NDArray
 from threadpoolctl import ThreadpoolController
 
@@ -794,7 +792,7 @@ def _band_scan_p(
     nu = np.maximum(rough_dof, 1).astype(np.float64)
     c = np.maximum(largest, 0.0)
     crossings = length / (2.0 * np.pi) * np.exp(-0.5 * nu * np.log1p(c**2 / nu))
-    return np.minimum(1.0, scipy.stats.t.sf(c, nu) + crossings)
+    return np.minimum(1.0, scipy.special.stdtr(nu, -c) + crossings)
 
 
 # --------------------------------------------------------------------------- energies in bulk
@@ -1269,11 +1267,11 @@ def screen_residuals(
     with np.errstate(divide="ignore", invalid="ignore"):
         noise_ratio = np.where(testable, np.sqrt(rough_energy / rough_dof), np.nan)
         statistic = np.where(testable, (sums.smooth_energy / smooth_dof) / (rough_energy / rough_dof), np.nan) / null_scale
-        smooth_p = np.where(testable, scipy.stats.f.sf(statistic, smooth_dof, rough_dof), np.nan)
+        smooth_p = np.where(testable, scipy.special.fdtrc(smooth_dof, rough_dof, statistic), np.nan)
         # The same null correction as the F ratio's, on the scale of a standard deviation.
         band_statistic = sums.band_largest / (noise_ratio * np.sqrt(null_scale))
         band_p = np.where(testable, _band_scan_p(band_statistic, sums.band_length, rough_dof), np.nan)
-        omnibus_p = np.where(testable, scipy.stats.chi2.sf(sums.energy / noise_tolerance**2, sums.total_dof), np.nan)
+        omnibus_p = np.where(testable, scipy.special.chdtrc(sums.total_dof, sums.energy / noise_tolerance**2), np.nan)
         durbin_watson = np.where(testable, sums.dw_numerator / sums.energy, np.nan)
     p_value = np.minimum(1.0, np.minimum.reduce([smooth_p / smooth_share, band_p / band_share, omnibus_p / omnibus_share]))
     flagged = testable & (p_value < alpha)
@@ -1628,6 +1626,8 @@ def explain_with_suspects(
     -------
     SuspectReport
     """
+    import scipy.optimize  # only for suspects: kept out of the import of every command
+
     alpha = _check_alpha(alpha)
     grid = _check_grid(wavelengths)
     noise = _check_noise(noise)
@@ -1693,7 +1693,7 @@ def explain_with_suspects(
             amount[i, j] = fit.x[-1]
             amount_se[i, j] = float(np.sqrt(covariance[-1, -1]))
             f_stat[i, j] = max(rss0 - rss1, 0.0) / sigma2
-            p_value[i, j] = 0.5 * scipy.stats.f.sf(f_stat[i, j], 1, dof) if fit.x[-1] > 0 else 1.0
+            p_value[i, j] = 0.5 * scipy.special.fdtrc(1, dof, f_stat[i, j]) if fit.x[-1] > 0 else 1.0
 
     with np.errstate(invalid="ignore"):
         top = np.argmax(np.nan_to_num(f_stat, nan=-1.0), axis=1)
@@ -1733,6 +1733,7 @@ def _imhof_tail(x: float, lam: NDArray[np.float64]) -> float:
     oscillations it is split into cosine and sine Fourier integrals, which QUADPACK
     integrates to infinity directly.
     """
+    import scipy.integrate  # only for the Q-limit's exact quantile: kept out of the import of every command
 
     def log_scale(u: float) -> float:
         # log(u r(u)), in logs so that many eigenvalues cannot overflow the product
@@ -1756,6 +1757,8 @@ def _imhof_tail(x: float, lam: NDArray[np.float64]) -> float:
 
 def _imhof_quantile(lam: NDArray[np.float64], alpha: float, guess: float) -> float:
     """Root of ``P(Q > q) = alpha``, bracketed around Box's approximation ``guess``."""
+    import scipy.optimize  # only for the Q-limit's exact quantile: kept out of the import of every command
+
     low, high = guess / 20.0, guess * 10.0
     while _imhof_tail(low, lam) < alpha:
         low /= 10.0
@@ -1817,7 +1820,7 @@ def q_limit(
     if not np.all(np.isfinite(lam)) or np.any(lam < 0) or np.any(lam.max(axis=-1) <= 0):
         raise AbsolveError("eigenvalues must be finite and >= 0, with at least one > 0 per set")
     theta1, theta2, theta3 = (np.sum(lam**k, axis=-1) for k in (1, 2, 3))
-    box = theta2 / theta1 * scipy.stats.chi2.isf(alpha, theta1**2 / theta2)
+    box = theta2 / theta1 * scipy.special.chdtri(theta1**2 / theta2, alpha)
     if method == "box":
         limit = box
     elif method == "imhof":
@@ -1825,7 +1828,7 @@ def q_limit(
         limit = np.array([_imhof_quantile(row[row > 0], alpha, guess) for row, guess in zip(sets, np.atleast_1d(box), strict=True)])
         limit = limit.reshape(theta1.shape)
     else:
-        z = scipy.stats.norm.isf(alpha)
+        z = -scipy.special.ndtri(alpha)
         h0 = 1.0 - 2.0 * theta1 * theta3 / (3.0 * theta2**2)
         spread = z * np.sqrt(2.0 * theta2) / theta1
         near_zero = np.abs(h0) < 1e-8
