@@ -20,8 +20,10 @@ whole process
 memory
     Peak resident memory of those runs (``wait4`` of the child) against the size of the scans as
     float64 (target <= 3x). A Python process with numpy, scipy and absolve imported holds
-    about 100-200 MB before it reads anything, so the peak above the same command on a
-    10-scan file is shown too.
+    about 100-200 MB before it reads anything (more than twice these 61 MB of scans), so the
+    target is judged on the peak above the same command's on a 10-scan file; the total is
+    shown too. (On 100,000 scans x 371 wavelengths the total itself is 2.6x the data:
+    tests/reliability/test_load.py.)
 planner
     Exact wavelength planning (``absolve.planning.plan_wavelengths``, branch and bound) of K = 3
     and K = 4 wavelengths among 300 candidates, beside its greedy search; for K = 3 also
@@ -193,7 +195,7 @@ def render(result: dict[str, Any]) -> str:
         total = whole["memory_ratio"][name]
         above = whole["memory_ratio_above_10_scans"][name]
         rows.append((label, f"{whole['peak_bytes'][name] / 2**20:.0f} MB", f"{total:.2f}x data ({above:.2f}x above 10 scans)",
-                     _verdict(total <= 3.0, "<= 3x") if name.startswith("absolve") else ""))
+                     _verdict(above <= 3.0, "<= 3x, above start-up") if name.startswith("absolve") else ""))
     lines.append(f"(scans as float64: {data_mb:.0f} MB)")
     plan = result["planner"]
     if "skipped" in plan:
