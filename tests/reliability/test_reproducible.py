@@ -66,6 +66,18 @@ def test_report_differs_only_in_its_time_stamp(made: Any, tmp_path: Path, capsys
     assert TIME_STAMP.sub("T", one) == TIME_STAMP.sub("T", two)
 
 
+@pytest.mark.parametrize("file_format", ["svg", "png"])
+def test_figure_files_are_identical(
+    file_format: str, made: Any, tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    argv = ["quantify", "samples.csv", "--library", "library.json", "--out", "{out}", "--figures", file_format]
+    first, second = _twice(tmp_path, capsys, monkeypatch, argv, [GOOD / "samples.csv", made.library])
+    names = sorted(path.name for path in (first / "figures").iterdir())
+    assert names and names == sorted(path.name for path in (second / "figures").iterdir())
+    for name in names:
+        assert (first / "figures" / name).read_bytes() == (second / "figures" / name).read_bytes(), name
+
+
 def test_calibrate_twice_gives_the_same_library_but_for_its_time(made: Any, tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch) -> None:
     argv = ["calibrate", "standards.csv", "--standards", "standards_concentrations.csv", "--unit", "mg/L", "--out", "{out}"]
     first, second = _twice(tmp_path, capsys, monkeypatch, argv, [GOOD / "standards.csv", GOOD / "standards_concentrations.csv"])
