@@ -6,13 +6,26 @@ import datetime as _dt
 import platform
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any
+from typing import Annotated, Any, Optional
+
+import typer
 
 from .. import __version__
 from ..errors import AbsolveError
 from ..io.files import file_sha256
 
-__all__ = ["parse_range", "provenance", "say"]
+__all__ = [
+    "BaselineOption", "DecimalOption", "FitRangeOption", "KeepRangeOption", "PathLengthOption", "QuantityOption",
+    "parse_range", "provenance", "say",
+]
+
+# Options several commands share, spelt once (typer reads them from the annotations).
+BaselineOption = Annotated[str, typer.Option("--baseline", help="Baseline terms: none, offset or linear.")]
+PathLengthOption = Annotated[float, typer.Option("--path-length", help="Cell path length in cm.")]
+QuantityOption = Annotated[Optional[str], typer.Option("--quantity", help="absorbance, transmittance or percent-transmittance.")]
+DecimalOption = Annotated[str, typer.Option("--decimal", help="Decimal mark of the scan tables ('.' or ',').")]
+FitRangeOption = Annotated[Optional[str], typer.Option("--range", help="Use wavelengths LOW:HIGH nm.")]
+KeepRangeOption = Annotated[Optional[str], typer.Option("--range", help="Keep wavelengths LOW:HIGH nm.")]
 
 
 def parse_range(text: str | None, option: str = "--range") -> tuple[float | None, float | None]:

@@ -16,7 +16,7 @@ from ..library import ReferenceLibrary, library_from_absorptivities
 from ..render import library_report
 from ..units import check_unit
 from ._app import app
-from ._common import parse_range, provenance
+from ._common import DecimalOption, KeepRangeOption, QuantityOption, parse_range, provenance
 
 
 @app.command()
@@ -27,9 +27,9 @@ def calibrate(
     unit: Annotated[str, typer.Option("--unit", help="Concentration unit: mol/L, mmol/L, umol/L, g/L, mg/L, ug/L.")] = ...,  # type: ignore[assignment]
     out: Annotated[Path, typer.Option("--out", help="Library file to write (JSON).")] = ...,  # type: ignore[assignment]
     blank: Annotated[Optional[Path], typer.Option("--blank", help="Blank scan(s) to subtract from every standard.")] = None,
-    wavelength_range: Annotated[Optional[str], typer.Option("--range", help="Keep wavelengths LOW:HIGH nm.")] = None,
-    quantity: Annotated[Optional[str], typer.Option("--quantity", help="absorbance, transmittance or percent-transmittance.")] = None,
-    decimal: Annotated[str, typer.Option("--decimal", help="Decimal mark of the scan tables ('.' or ',').")] = ".",
+    wavelength_range: KeepRangeOption = None,
+    quantity: QuantityOption = None,
+    decimal: DecimalOption = ".",
     molar_mass: Annotated[Optional[list[str]], typer.Option("--molar-mass", help="NAME=G_PER_MOL, repeatable.")] = None,
     tolerance: Annotated[float, typer.Option("--linearity-tolerance", help="Relative departure from the line that ends the working range.")] = 0.01,
     force: Annotated[bool, typer.Option("--force", help="Replace an existing library file.")] = False,

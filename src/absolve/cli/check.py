@@ -17,7 +17,7 @@ from ..io.tables import read_scans
 from ..render import format_table
 from ..spectra import Spectra
 from ._app import app
-from ._common import parse_range
+from ._common import BaselineOption, DecimalOption, FitRangeOption, PathLengthOption, QuantityOption, parse_range
 
 if TYPE_CHECKING:
     from ..checking import CheckResult
@@ -29,12 +29,12 @@ def check(
     library: Annotated[Path, typer.Option("--library", help="Library file from 'absolve calibrate'.")],
     out: Annotated[Optional[Path], typer.Option("--out", help="Folder for check.csv and a residual plot per flagged scan.")] = None,
     suspects: Annotated[Optional[Path], typer.Option("--suspects", help="Candidate interferents: a scan table / JCAMP-DX (absorbance per unit per cm) or a library file.")] = None,
-    baseline: Annotated[str, typer.Option("--baseline", help="Baseline terms: none, offset or linear.")] = "offset",
-    wavelength_range: Annotated[Optional[str], typer.Option("--range", help="Use wavelengths LOW:HIGH nm.")] = None,
-    path_length: Annotated[float, typer.Option("--path-length", help="Cell path length in cm.")] = 1.0,
+    baseline: BaselineOption = "offset",
+    wavelength_range: FitRangeOption = None,
+    path_length: PathLengthOption = 1.0,
     alpha: Annotated[float, typer.Option("--alpha", help="False-alarm rate of the screen.")] = 0.05,
-    quantity: Annotated[Optional[str], typer.Option("--quantity", help="absorbance, transmittance or percent-transmittance.")] = None,
-    decimal: Annotated[str, typer.Option("--decimal", help="Decimal mark of the scan tables ('.' or ',').")] = ".",
+    quantity: QuantityOption = None,
+    decimal: DecimalOption = ".",
     force: Annotated[bool, typer.Option("--force", help="Replace existing check files.")] = False,
     as_json: Annotated[bool, typer.Option("--json", help="Print the verdicts as JSON.")] = False,
 ) -> None:

@@ -10,7 +10,7 @@ import typer
 from ..errors import AbsolveError
 from ..render import ProgressLine
 from ._app import app
-from ._common import parse_range
+from ._common import BaselineOption, DecimalOption, FitRangeOption, PathLengthOption, QuantityOption, parse_range
 
 
 @app.command()
@@ -19,15 +19,15 @@ def quantify(
     out: Annotated[Path, typer.Option("--out", help="Folder for results.csv, fit.csv, results.json, report.html.")],
     library: Annotated[Optional[Path], typer.Option("--library", help="Library file from 'absolve calibrate'.")] = None,
     model: Annotated[Optional[Path], typer.Option("--model", help="PLS model file from 'absolve train' (with --library too: both results compared).")] = None,
-    baseline: Annotated[str, typer.Option("--baseline", help="Baseline terms: none, offset or linear.")] = "offset",
-    wavelength_range: Annotated[Optional[str], typer.Option("--range", help="Use wavelengths LOW:HIGH nm.")] = None,
-    path_length: Annotated[float, typer.Option("--path-length", help="Cell path length in cm.")] = 1.0,
+    baseline: BaselineOption = "offset",
+    wavelength_range: FitRangeOption = None,
+    path_length: PathLengthOption = 1.0,
     dilution: Annotated[float, typer.Option("--dilution", help="Dilution factor of the samples before scanning.")] = 1.0,
     path_tolerance: Annotated[float, typer.Option("--path-length-tolerance", help="Relative standard uncertainty of the path length.")] = 0.0,
     dilution_tolerance: Annotated[float, typer.Option("--dilution-tolerance", help="Relative standard uncertainty of the dilution.")] = 0.0,
     ceiling: Annotated[float, typer.Option("--ceiling", help="Instrument ceiling: absorbance above it is not used.")] = 2.0,
-    quantity: Annotated[Optional[str], typer.Option("--quantity", help="absorbance, transmittance or percent-transmittance.")] = None,
-    decimal: Annotated[str, typer.Option("--decimal", help="Decimal mark of the scan tables ('.' or ',').")] = ".",
+    quantity: QuantityOption = None,
+    decimal: DecimalOption = ".",
     blank: Annotated[Optional[Path], typer.Option("--blank", help="Blank scan(s) to subtract first.")] = None,
     figures: Annotated[Optional[str], typer.Option("--figures", help="Also save the report's figures as png or svg files in OUT/figures/.")] = None,
     detail: Annotated[int, typer.Option("--detail", help="Draw the first N scans in detail (and up to N flagged ones).")] = 12,

@@ -11,7 +11,7 @@ from ..io.files import check_writable, write_all
 from ..io.tables import concentration_matrix, per_scan_value, read_concentration_table, read_scans
 from ..units import check_unit
 from ._app import app
-from ._common import parse_range, say
+from ._common import DecimalOption, KeepRangeOption, parse_range, say
 
 # Without --unit the concentrations are taken as mg/L, the unit most dye and
 # colour work reports in (common practice, no source); the run says so.
@@ -32,11 +32,11 @@ def train(
         Optional[int], typer.Option("--max-components", help="Most latent variables tried (default up to 10).")
     ] = None,
     folds: Annotated[int, typer.Option("--folds", help="Cross-validation folds (at most one per standard).")] = 10,
-    wavelength_range: Annotated[Optional[str], typer.Option("--range", help="Keep wavelengths LOW:HIGH nm.")] = None,
+    wavelength_range: KeepRangeOption = None,
     quantity: Annotated[
         Optional[str], typer.Option("--quantity", help="absorbance, transmittance or percent-transmittance (default absorbance).")
     ] = None,
-    decimal: Annotated[str, typer.Option("--decimal", help="Decimal mark of the scan tables ('.' or ',').")] = ".",
+    decimal: DecimalOption = ".",
     force: Annotated[bool, typer.Option("--force", help="Replace an existing model file.")] = False,
 ) -> None:
     """Train a PLS model (one per component) on scans of mixed standards; print the RMSECV curve."""
