@@ -7,6 +7,7 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
+import numpy as np
 import pytest
 
 from absolve.cli import main
@@ -58,7 +59,7 @@ def assert_no_bare_gaps(results: Path) -> list[dict[str, str]]:
     return rows
 
 
-def write_large_scan_table(path: Path, grid: "np.ndarray", absorbance: "np.ndarray", *, block: int = 4096) -> None:
+def write_large_scan_table(path: Path, grid: np.ndarray, absorbance: np.ndarray, *, block: int = 4096) -> None:
     """Write scans (rows of ``absorbance``) as a wide scan table with 4 decimals, fast.
 
     Formatting 37 million numbers one by one takes minutes; here every cell is
@@ -72,7 +73,6 @@ def write_large_scan_table(path: Path, grid: "np.ndarray", absorbance: "np.ndarr
     absorbance : ndarray, shape (n_scans, n_wavelengths)
         Values in (-10, 10).
     """
-    import numpy as np
 
     n_scans = absorbance.shape[0]
     with open(path, "wb") as stream:

@@ -40,7 +40,8 @@ _MEASURE = (
 #                               +0.7 GB (a Python dict per scan), then the summary dumped once more for --json;
 #   with them (later that day): x 50: 25 s, peak 1.36 GB; x 371: 67 s, peak 2.17 GB.
 #   with every file written chunk by chunk and the report made from per-scan numbers and the drawn
-#   scans only (2026-12-02, later): x 50: 18 s, peak 348 MB (budget 453 MB); x 371: 76 s, peak 772 MB (budget 1432 MB).
+#   scans only (2026-12-02, later): x 50: 18 s, peak 348 MB (budget 453 MB); x 371: 76 s, peak 772 MB (budget 1432 MB);
+#   with chunks of 2,048 scans and the writer holding one chunk: x 50: 16 s, 307 MB; x 371: 47 s, 688 MB.
 LARGE = pytest.mark.skipif(not SLOW, reason="100,000 x 371 wavelengths (a 300 MB file, minutes): set ABSOLVE_SLOW=1 to run it")
 
 
