@@ -22,7 +22,7 @@ memory
     float64 (target <= 3x). A Python process with numpy, scipy and absolve imported holds
     about 100-200 MB before it reads anything (more than twice these 61 MB of scans), so the
     target is judged on the peak above the same command's on a 10-scan file; the total is
-    shown too. (On 100,000 scans x 371 wavelengths the total itself is 2.6x the data:
+    shown too. (On 100,000 scans x 371 wavelengths the total itself is 2.3x the data:
     tests/reliability/test_load.py.)
 planner
     Exact wavelength planning (``absolve.planning.plan_wavelengths``, branch and bound) of K = 3
