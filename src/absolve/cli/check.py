@@ -14,7 +14,7 @@ import typer
 from ..io.files import check_writable, write_all
 from ..io.library_file import read_library
 from ..io.tables import read_scans
-from ..render import format_table
+from ..render import ProgressLine, format_table
 from ..spectra import Spectra
 from ._app import app
 from ._common import BaselineOption, DecimalOption, FitRangeOption, PathLengthOption, QuantityOption, parse_range
@@ -41,23 +41,30 @@ def check(
     """Tell, scan by scan, whether something the library does not explain is present, where, and what it looks like."""
     if out is not None:
         check_writable([out / "check.csv"], force=force)
-    reference = read_library(library)
-    spectra = read_scans(scans, decimal=decimal, quantity=quantity)  # type: ignore[arg-type]
-    candidates = _read_suspects(suspects, decimal) if suspects is not None else None
     from ..checking import check_scans  # loaded by the command that needs it: quick start-up
 
-    result = check_scans(
-        spectra, reference, suspects=candidates, baseline=baseline,  # type: ignore[arg-type]
-        wavelength_range=parse_range(wavelength_range), path_length=path_length, alpha=alpha,
-    )
-    rows = result.rows()
-    if out is not None:
-        files: dict[Path, str | bytes] = {out / "check.csv": _check_csv(rows)}
-        from ..report.residual_figure import residual_png
+    # Progress goes to stderr and only to a terminal: a large batch's plots take a while.
+    with ProgressLine() as progress:
+        progress("reading", 0, 0)
+        reference = read_library(library)
+        spectra = read_scans(scans, decimal=decimal, quantity=quantity)  # type: ignore[arg-type]
+        candidates = _read_suspects(suspects, decimal) if suspects is not None else None
+        progress(f"screening {spectra.values.shape[0]} scans", 0, 0)
+        result = check_scans(
+            spectra, reference, suspects=candidates, baseline=baseline,  # type: ignore[arg-type]
+            wavelength_range=parse_range(wavelength_range), path_length=path_length, alpha=alpha,
+        )
+        rows = result.rows()
+        if out is not None:
+            files: dict[Path, str | bytes] = {out / "check.csv": _check_csv(rows)}
+            from ..report.residual_figure import residual_png
 
-        for i in (i for i, row in enumerate(rows) if row["interferent"]):
-            files[out / f"residual-{_safe(rows[i]['scan'])}.png"] = residual_png(result.mixture, i, reference.noise)
-        write_all(files, force=force)
+            flagged = [i for i, row in enumerate(rows) if row["interferent"]]
+            for done, i in enumerate(flagged, start=1):
+                files[out / f"residual-{_safe(rows[i]['scan'])}.png"] = residual_png(result.mixture, i, reference.noise)
+                progress("drawing residual plots", done, len(flagged))
+            progress("writing files", 0, 0)
+            write_all(files, force=force)
     typer.echo(json.dumps(rows, indent=1) if as_json else _table(result, rows))
 
 
