@@ -34,6 +34,7 @@ if TYPE_CHECKING:
 __all__ = ["FIGURE_FOLDER", "Progress", "QuantifyRequest", "QuantifyOutcome", "run_quantify", "RESULT_FILES"]
 
 RESULT_FILES = ("results.csv", "fit.csv", "fitted.csv", "residuals.csv", "results.json", "report.html")
+SPECTRA_FILES = ("fitted.csv", "residuals.csv")  # left out with QuantifyRequest(spectra=False)
 FIGURE_FOLDER = "figures"
 CHUNK_SCANS = 2048  # scans fitted, written and let go at a time (their spectra: a few MB to tens of MB)
 
@@ -66,6 +67,7 @@ class QuantifyRequest:
     force: bool = False
     figures: str | None = None
     detail: int = 12
+    spectra: bool = True
     extra_sections: list[tuple[str, str]] = field(default_factory=list)
 
 
@@ -100,6 +102,7 @@ def _options(request: QuantifyRequest) -> dict[str, Any]:
         "quantity": request.quantity,
         "detail": request.detail,
         "figures": request.figures,
+        "spectra": request.spectra,
     }
 
 
@@ -174,13 +177,17 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
         files.update(zip(figure_files, (figure.file for figure in figures if figure.file is not None)))
         return files
 
-    streamed = {name: request.out / name for name in RESULT_FILES if name != "report.html"}
+    skipped = () if request.spectra else SPECTRA_FILES
+    streamed = {name: request.out / name for name in RESULT_FILES if name != "report.html" and name not in skipped}
     json_extra = None if prediction is None else {"pls": prediction.summary()}
     write_results_in_chunks(gathered(), streamed, provenance=record, force=request.force, json_extra=json_extra, finish=report_files)
+    for name in skipped:
+        # Spectra of an earlier run (replaced with --force) would not match these results.
+        (request.out / name).unlink(missing_ok=True)
     result = batch.result
     saved = f" and {len(figure_files)} figures in {figure_folder}/" if file_format is not None else ""
     text = result.report() + (_agreement(result, prediction) if prediction is not None else "")
-    text += f"\nresults written to {request.out}/ ({', '.join(RESULT_FILES)}){saved}"
+    text += f"\nresults written to {request.out}/ ({', '.join(name for name in RESULT_FILES if name not in skipped)}){saved}"
     return QuantifyOutcome(result, text, (*streamed.values(), targets[5], *figure_files))
 
 

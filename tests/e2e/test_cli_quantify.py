@@ -233,3 +233,17 @@ def _split_numbers(value: object) -> tuple[object, list[float]]:
 def _comparable(text: str) -> str:
     """The text without time stamps and SVG clip-path ids (hashes of axes limits, which chunking can move by a rounding error)."""
     return re.sub(r'(clip-path="url\(#|clipPath id=")p[0-9a-f]+', r"\1p", TIME_STAMP.sub("T", text))
+
+
+def test_no_spectra_leaves_out_the_spectra_tables_and_any_stale_ones(inputs: Inputs, tmp_path: Path) -> None:
+    out = tmp_path / "out"
+    argv = ["quantify", str(inputs.samples), "--library", str(inputs.library), "--out", str(out)]
+    assert main(argv) == 0
+    with_spectra = {path.name: path.read_bytes() for path in out.iterdir()}
+    assert main([*argv, "--no-spectra"]) == 2  # the earlier run's files are there: --force is needed
+    assert main([*argv, "--no-spectra", "--force"]) == 0
+    names = sorted(path.name for path in out.iterdir())
+    assert names == sorted(set(RESULT_FILES) - {"fitted.csv", "residuals.csv"})
+    for name in ("results.csv", "fit.csv"):
+        assert (out / name).read_bytes() == with_spectra[name]
+    assert json.loads((out / "results.json").read_text())["provenance"]["options"]["spectra"] is False

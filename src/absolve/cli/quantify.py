@@ -31,6 +31,7 @@ def quantify(
     blank: Annotated[Optional[Path], typer.Option("--blank", help="Blank scan(s) to subtract first.")] = None,
     figures: Annotated[Optional[str], typer.Option("--figures", help="Also save the report's figures as png or svg files in OUT/figures/.")] = None,
     detail: Annotated[int, typer.Option("--detail", help="Draw the first N scans in detail (and up to N flagged ones).")] = 12,
+    spectra: Annotated[bool, typer.Option("--spectra/--no-spectra", help="Write fitted.csv and residuals.csv (as large as the scans themselves).")] = True,
     force: Annotated[bool, typer.Option("--force", help="Replace existing result files.")] = False,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors (no progress line either).")] = False,
     as_json: Annotated[bool, typer.Option("--json", help="Print the results as JSON instead of a table.")] = False,
@@ -44,7 +45,7 @@ def quantify(
         scans=list(scans), out=out, library=library, model=model, baseline=baseline,
         wavelength_range=parse_range(wavelength_range), path_length=path_length, dilution=dilution,
         path_length_tolerance=path_tolerance, dilution_tolerance=dilution_tolerance, ceiling=ceiling,
-        quantity=quantity, decimal=decimal, blank=blank, force=force, figures=figures, detail=detail,
+        quantity=quantity, decimal=decimal, blank=blank, force=force, figures=figures, detail=detail, spectra=spectra,
     )
     # Progress goes to stderr and only to a terminal, so --json output on stdout stays pure JSON.
     with ProgressLine(quiet=quiet) as progress:
