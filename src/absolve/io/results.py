@@ -287,7 +287,7 @@ def write_results_in_chunks(
                     _join_columns(handles[name], "wavelength_nm", names, wavelengths, parts[name], stack)
             for handle in handles.values():
                 handle.close()
-            for name, path in temporary.items():
+            for path in temporary.values():
                 os.chmod(path, 0o666 & ~_umask())
             others = finish() if finish is not None else {}
             write_all(others, force=force, staged=[(path, targets[name]) for name, path in temporary.items()])
