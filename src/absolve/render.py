@@ -114,6 +114,8 @@ def mixture_report(result: MixtureResult, *, max_scans: int = 200) -> str:
     used = sorted({f for scan in result.scan_flags for f in scan} | {f for scan in result.flags for per in scan for f in per})
     for flag in used:
         lines.append(f"{flag}: {FLAG_TEXT[flag]}")
+    if "interferent" in used:
+        lines.append(f"Interferent screen: {result.screening.batch_note()}")
     return "\n".join(lines)
 
 

@@ -98,6 +98,8 @@ Confidence = Literal["high", "moderate", "low"]
 # Fewer rough degrees of freedom than this leave the F ratio's denominator too
 # unstable to be worth a p-value; such scans are reported as untestable.
 _MIN_ROUGH_DOF = 5
+# A flagged count whose binomial upper tail at alpha is below this is 'far more than chance'.
+_EXCESS_P = 1e-3
 # Scans are processed in blocks so the stacked whitened bases stay small in memory.
 _BLOCK = 256
 # Scans per block of the shared-pattern path: its per-scan arrays are a few times n_wl x 32
@@ -302,10 +304,31 @@ class Screening:
             "scans": scans,
         }
 
+    def batch_note(self) -> str:
+        """One sentence on the flagged count against what chance alone gives at ``alpha``.
+
+        When the count is far above chance (binomial upper tail below 0.001),
+        the sentence says what that can mean: many samples hold something the
+        library does not explain, or the library's own errors are large
+        enough to trip the screen on clean samples (see docs/screening.md).
+        """
+        tested = int(np.count_nonzero(np.isfinite(self.p_value)))
+        flagged = int(np.count_nonzero(self.flagged))
+        expected = self.alpha * tested
+        text = f"{flagged} of {tested} tested scan(s) flagged; about {expected:.2g} would be by chance if all were clean."
+        # P(X >= flagged) for X ~ Binomial(tested, alpha).
+        if flagged >= 3 and scipy.special.bdtrc(flagged - 1, tested, self.alpha) < _EXCESS_P:
+            text += (
+                " That is far more than chance: either many of these samples hold something the library does not explain,"
+                " or the library is too uncertain for this screen (its own absorptivity errors look like structure);"
+                " run check standards known to be clean to tell, and recalibrate with more standards if they are flagged too."
+            )
+        return text
+
     def report(self, names: Sequence[str] | None = None) -> str:
         """Plain-text report, one block per scan (``names`` label the scans)."""
         labels = list(names) if names is not None else [f"scan {i + 1}" for i in range(self.n_scans)]
-        lines = [f"Interferent screen at alpha = {self.alpha:g} ({self.method})"]
+        lines = [f"Interferent screen at alpha = {self.alpha:g} ({self.method}): {self.batch_note()}"]
         for i, label in enumerate(labels):
             if np.isnan(self.p_value[i]):
                 lines.append(f"{label}: not tested (too few usable points)")

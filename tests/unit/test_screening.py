@@ -535,3 +535,21 @@ def test_screening_result_fields_line_up() -> None:
         assert array.shape == (5,)
     assert len(result.diagnoses) == 5
     np.testing.assert_array_equal(result.flagged, result.p_value < ALPHA)
+
+
+def test_batch_note_compares_the_flagged_count_with_chance() -> None:
+    # Binomial tail: with 200 scans at alpha = 0.05, 10 expected; 20 or more has P = 0.0027 and 25 or more
+    # P = 2.6e-5 (scipy.special.bdtrc, the binomial survival function; common practice, no source for the 1e-3 cut).
+    def screening(n_flagged: int, n_scans: int = 200) -> Screening:
+        p_value = np.full(n_scans, 0.5)
+        p_value[:n_flagged] = 0.001
+        nan = np.full(n_scans, np.nan)
+        zero = np.zeros(n_scans, dtype=np.int64)
+        return Screening(
+            statistic=nan, p_value=p_value, flagged=p_value < 0.05, alpha=0.05, method="test", diagnoses=(None,) * n_scans,
+            smooth_p=nan, omnibus_p=nan, noise_ratio=nan, durbin_watson=nan, smooth_dof=zero, rough_dof=zero,
+        )
+
+    assert screening(12).batch_note() == "12 of 200 tested scan(s) flagged; about 10 would be by chance if all were clean."
+    assert "far more than chance" not in screening(20).batch_note()
+    assert "far more than chance" in screening(25).batch_note()

@@ -120,5 +120,6 @@ def _table(result: CheckResult, rows: list[dict]) -> str:
     flagged = [row for row in rows if row["interferent"] and row["message"]]
     for row in flagged:
         lines.append(f"{row['scan']}: {row['message']}")
-    lines.append(f"Screen: {result.mixture.screening.method}; false-alarm rate {result.mixture.screening.alpha:g}.")
+    screening = result.mixture.screening
+    lines.append(f"Screen: {screening.method}; false-alarm rate {screening.alpha:g}. {screening.batch_note()}")
     return "\n".join(lines)

@@ -399,8 +399,7 @@ def _screen(result: MixtureResult) -> str:
         f"<p>The residual of every scan was tested for structure the library does not explain ({_e(screening.method)}), "
         f"at a false-alarm rate of {screening.alpha:g} per scan: <b>{flagged.size}</b> of {screening.n_scans} scan(s) flagged"
         + (f", {untestable} could not be tested" if untestable else "")
-        + ". At this rate about "
-        f"{screening.alpha * screening.n_scans:.3g} clean scan(s) in a batch this size are flagged by chance.</p>"
+        + f". {_e(screening.batch_note())}</p>"
     )
     if flagged.size == 0:
         return intro
