@@ -315,7 +315,8 @@ class Screening:
         tested = int(np.count_nonzero(np.isfinite(self.p_value)))
         flagged = int(np.count_nonzero(self.flagged))
         expected = self.alpha * tested
-        text = f"{flagged} of {tested} tested scan(s) flagged; about {expected:.2g} would be by chance if all were clean."
+        about = f"{expected:.0f}" if expected >= 10 else f"{expected:.2g}"
+        text = f"{flagged} of {tested} tested scan(s) flagged; about {about} would be by chance if all were clean."
         # P(X >= flagged) for X ~ Binomial(tested, alpha).
         if flagged >= 3 and scipy.special.bdtrc(flagged - 1, tested, self.alpha) < _EXCESS_P:
             text += (

@@ -553,3 +553,4 @@ def test_batch_note_compares_the_flagged_count_with_chance() -> None:
     assert screening(12).batch_note() == "12 of 200 tested scan(s) flagged; about 10 would be by chance if all were clean."
     assert "far more than chance" not in screening(20).batch_note()
     assert "far more than chance" in screening(25).batch_note()
+    assert screening(12, n_scans=20000).batch_note().startswith("12 of 20000 tested scan(s) flagged; about 1000 would be")

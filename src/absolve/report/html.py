@@ -222,8 +222,7 @@ def _attention(result: MixtureResult, detailed: dict[int, str], shown: int = 6) 
         more = f" and {len(scans) - shown} more" if len(scans) > shown else ""
         chance = ""
         if flag == "interferent":
-            expected = result.screening.alpha * result.n_scans
-            chance = f" At the screen's false-alarm rate about {expected:.2g} clean scan(s) would be flagged by chance."
+            chance = " " + _e(result.screening.batch_note())
         items.append(f'<li><span class="flag">{_e(flag)}</span> in {len(scans)} scan(s) ({names}{more}): {_e(FLAG_TEXT[flag])}.{chance}</li>')
     if not items:
         return '<div class="clear"><span class="ok">Nothing needs attention:</span> no scan or result carries a flag.</div>'
