@@ -68,9 +68,11 @@ def atomic_write(path: str | os.PathLike[str], content: Content) -> None:
 
 
 def _stage(target: Path, content: Content) -> Path:
-    """Write ``content`` to a new temporary file beside ``target`` (``.NAME.*.part``) and return its path."""
+    """Write ``content`` to a new temporary file beside ``target`` (``.NAME.*.part``) and return its path.
+
+    The folder exists: :func:`write_all` makes it (see :func:`folders_removed_on_failure`).
+    """
     try:
-        target.parent.mkdir(parents=True, exist_ok=True)
         handle, temporary = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".part", dir=target.parent)
     except OSError as error:
         raise AbsolveError(f"cannot write {target}: {error.strerror}", fix="check the folder exists and is writable") from None
@@ -107,7 +109,7 @@ def folders_removed_on_failure(folders: Iterable[str | os.PathLike[str]]) -> Ite
     created = sorted({path for folder in folders for path in (folder, *folder.parents) if not path.exists()}, key=lambda path: -len(path.parts))
     for folder in folders:
         try:
-            Path(folder).mkdir(parents=True, exist_ok=True)
+            folder.mkdir(parents=True, exist_ok=True)
         except OSError as error:
             _remove_empty(created)
             raise AbsolveError(f"cannot write into {folder}: {error.strerror}", fix="check the folder exists and is writable") from None

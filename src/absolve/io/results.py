@@ -144,14 +144,19 @@ def results_json(result: MixtureResult, provenance: dict[str, Any], extra: dict[
     "provenance", ...extra}``; each scan is the record of
     :meth:`MixtureResult.summary`.
     """
-    tail = {"provenance": provenance, **(extra or {})}
-    return _json_head(result) + ",\n".join(scan_json_lines(result)) + "\n], " + json.dumps(tail, indent=1, allow_nan=False)[1:] + "\n"
+    return _json_head(result) + ",\n".join(scan_json_lines(result)) + _json_tail(provenance, extra)
 
 
 def _json_head(result: MixtureResult) -> str:
     """The opening of results.json up to its list of scans (the keys of :meth:`MixtureResult.summary` before "scans")."""
     head = {"format": "absolve-results", "version": 1, "unit": result.unit, "components": list(result.components), "settings": dict(result.settings)}
     return json.dumps(head, allow_nan=False)[:-1] + ', "scans": [\n'
+
+
+def _json_tail(provenance: dict[str, Any], extra: dict[str, Any] | None) -> str:
+    """The closing of results.json after its list of scans: provenance and any further entries."""
+    tail = {"provenance": provenance, **(extra or {})}
+    return "\n], " + json.dumps(tail, indent=1, allow_nan=False)[1:] + "\n"
 
 
 _LEADING = ("concentration", "std_uncertainty", "expanded_uncertainty", "coverage_factor", "effective_dof")
@@ -280,8 +285,7 @@ def write_results_in_chunks(
             if wavelengths is None:
                 raise AbsolveError("no scans to write", fix="give at least one scan")
             if "results.json" in handles:
-                tail = {"provenance": provenance, **(json_extra or {})}
-                handles["results.json"].write("\n], " + json.dumps(tail, indent=1, allow_nan=False)[1:] + "\n")
+                handles["results.json"].write(_json_tail(provenance, json_extra))
             for name in ("fitted.csv", "residuals.csv"):
                 if name in handles:
                     _join_columns(handles[name], "wavelength_nm", names, wavelengths, parts[name], stack)

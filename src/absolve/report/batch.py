@@ -21,7 +21,7 @@ from numpy.typing import NDArray
 from ..library import ReferenceLibrary
 from ..quantify import MixtureResult, concatenate_results
 
-__all__ = ["DetailScans", "ReportBatch", "expected_rms_residual"]
+__all__ = ["DetailScans", "ReportBatch", "detail_positions", "expected_rms_residual", "flag_strength"]
 
 
 def expected_rms_residual(result: MixtureResult, library: ReferenceLibrary) -> NDArray[np.float64] | None:
@@ -60,8 +60,24 @@ class DetailScans:
         return self.first + self.flagged
 
 
-def _is_flagged(result: MixtureResult) -> NDArray[np.bool_]:
-    return np.fromiter((bool(flags) for flags in result.scan_flags), dtype=bool, count=result.n_scans) | result.interferent
+def flag_strength(result: MixtureResult) -> tuple[NDArray[np.bool_], NDArray[np.float64]]:
+    """Per scan: flagged (any scan flag or an interferent verdict), and the screen's p-value (NaN as 1) to rank them."""
+    flagged = np.fromiter((bool(flags) for flags in result.scan_flags), dtype=bool, count=result.n_scans) | result.interferent
+    return flagged, np.nan_to_num(result.screening.p_value, nan=1.0)
+
+
+def detail_positions(index: NDArray[np.intp], p: NDArray[np.float64], flagged: NDArray[np.bool_], count: int) -> NDArray[np.intp]:
+    """Positions of the scans to draw among candidates with batch indices ``index``.
+
+    The first ``count`` scans of the batch in order, then up to ``count``
+    flagged scans not among them, most strongly flagged first (smallest
+    ``p``, then batch order).
+    """
+    first = np.flatnonzero(index < count)
+    first = first[np.argsort(index[first], kind="stable")]
+    others = np.flatnonzero(flagged & (index >= count))
+    others = others[np.lexsort((index[others], p[others]))][:count]
+    return np.concatenate([first, others])
 
 
 class ReportBatch:
@@ -101,29 +117,17 @@ class ReportBatch:
         index = self.n_scans + np.arange(chunk.n_scans)
         self._parts.append(chunk.without_spectra())
         self._expected.append(expected_rms_residual(chunk, self.library))
-        flagged = _is_flagged(chunk)
-        p = np.nan_to_num(chunk.screening.p_value, nan=1.0)
-        # Candidates from this chunk: scans among the first, and the best flagged ones after them.
-        early = index < self.detail
-        late = np.flatnonzero(flagged & ~early)
-        late = late[np.lexsort((late, p[late]))][: self.detail]
-        new = np.concatenate([np.flatnonzero(early), late])
+        flagged, p = flag_strength(chunk)
+        # Candidates from this chunk are chosen by the same rule as from the pool of kept and new ones.
+        new = detail_positions(index, p, flagged, self.detail)
         pooled = chunk.take(new) if self._kept is None else concatenate_results([self._kept, chunk.take(new)])
         pool_index = np.concatenate([self._kept_index, index[new]])
         pool_p = np.concatenate([self._kept_p, p[new]])
         pool_flagged = np.concatenate([self._kept_flagged, flagged[new]])
-        keep = self._choose(pool_index, pool_p, pool_flagged)
+        keep = detail_positions(pool_index, pool_p, pool_flagged, self.detail)
         self._kept = pooled.take(keep)
         self._kept_index, self._kept_p, self._kept_flagged = pool_index[keep], pool_p[keep], pool_flagged[keep]
         self.n_scans += chunk.n_scans
-
-    def _choose(self, index: NDArray[np.intp], p: NDArray[np.float64], flagged: NDArray[np.bool_]) -> NDArray[np.intp]:
-        """Positions (in the pool) of the first scans, then of the most strongly flagged others."""
-        first = np.flatnonzero(index < self.detail)
-        first = first[np.argsort(index[first])]
-        others = np.flatnonzero(flagged & (index >= self.detail))
-        others = others[np.lexsort((index[others], p[others]))][: self.detail]
-        return np.concatenate([first, others])
 
     @property
     def result(self) -> MixtureResult:

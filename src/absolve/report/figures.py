@@ -25,7 +25,7 @@ from typing import TYPE_CHECKING, Literal
 import numpy as np
 from numpy.typing import NDArray
 
-from .batch import ReportBatch, expected_rms_residual
+from .batch import ReportBatch, detail_positions, expected_rms_residual, flag_strength
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
@@ -410,13 +410,10 @@ def detail_scans(result: MixtureResult, count: int) -> tuple[list[int], list[int
         Indices of the first scans, and of the flagged scans not among them.
     """
     count = max(int(count), 0)
-    first = list(range(min(count, result.n_scans)))
-    is_flagged = np.array([bool(result.scan_flags[i]) or bool(result.interferent[i]) for i in range(result.n_scans)], dtype=bool)
-    is_flagged[first] = False
-    candidates = np.flatnonzero(is_flagged)
-    p = np.nan_to_num(result.screening.p_value[candidates], nan=1.0)
-    order = candidates[np.lexsort((candidates, p))]
-    return first, [int(i) for i in order[:count]]
+    flagged, p = flag_strength(result)
+    chosen = detail_positions(np.arange(result.n_scans), p, flagged, count).tolist()
+    n_first = min(count, result.n_scans)
+    return chosen[:n_first], chosen[n_first:]
 
 
 _ID = re.compile(r'(\bid="|href="#|url\(#)([^")]+)')
