@@ -814,24 +814,12 @@ def _correlation_length(lag: float, square: float, grid: NDArray[np.float64]) ->
 
 def _merge_screenings(parts: list[tuple[NDArray[np.intp], Screening]], n: int) -> Screening:
     """One screening record from those of blocks of scans (``parts``: the block's positions and its record)."""
-    first = parts[0][1]
-    values: dict[str, Any] = {}
-    for item in dataclasses.fields(Screening):
-        sample = getattr(first, item.name)
-        if isinstance(sample, np.ndarray) and sample.shape[:1] == (parts[0][0].size,):
-            merged = np.empty((n, *sample.shape[1:]), dtype=sample.dtype)
-            for rows, part in parts:
-                merged[rows] = getattr(part, item.name)
-            values[item.name] = merged
-        elif isinstance(sample, tuple) and len(sample) == parts[0][0].size:
-            entries: list[Any] = [None] * n
-            for rows, part in parts:
-                for row, entry in zip(rows.tolist(), getattr(part, item.name)):
-                    entries[row] = entry
-            values[item.name] = tuple(entries)
-        else:
-            values[item.name] = sample
-    return Screening(**values)
+    positions = np.concatenate([rows for rows, _ in parts])
+    joined = _join([part for _, part in parts], _SCREENING_BATCH_FIELDS)
+    # The blocks hold every position once: the inverse permutation puts the scans back in order.
+    order = np.empty(n, dtype=np.intp)
+    order[positions] = np.arange(positions.size)
+    return _take(joined, order, _SCREENING_BATCH_FIELDS)
 
 
 def _unscreened(n_scans: int, alpha: float, reason: str) -> Screening:
