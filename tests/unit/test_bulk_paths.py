@@ -133,6 +133,7 @@ def test_many_rows_take_the_recursion_and_match_dense_products() -> None:
         "wavelength,a,b\n400,0.1,0.2\n401,0.15,0.25\n402,0.2,0.3\n",
         "# comment\nnm\ta\tb\n400\t0.1\t0.2\n# note\n\n401\t0.15\t0.25\r\n402\t0.2\t0.3\n",
         "nm;a;b\n400;0,1;0,2\n401;0,15;0,25\n402;0,2;0,3\n",
+        "nm a b\n400 0.1  0.2\n401 0.15 0.25\n402 0.2 0.3\n",
     ],
 )
 def test_streamed_parse_equals_the_text_parse(write_file, text: str) -> None:
