@@ -24,6 +24,7 @@ from .io.results import prediction_fit_csv, prediction_results_csv, write_result
 from .io.tables import read_scans
 from .quantify import MixtureResult, quantify_chunks
 from .report.batch import ReportBatch
+from .report.background import BackgroundFigures
 from .report.figures import FigureFormat, render_figures
 from .report.html import build_report
 from .spectra import Spectra
@@ -158,11 +159,15 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
     # Each chunk is written as it comes and leaves only its per-scan numbers and the
     # scans the report draws, so memory stays bounded whatever the batch size.
     batch = ReportBatch(library, request.detail)
+    # Batches of several chunks take long enough for a worker process to draw the figures meanwhile.
+    drawer = BackgroundFigures(library, file_format) if n_scans > CHUNK_SCANS else None
 
     def gathered() -> Iterator[MixtureResult]:
         progress("fitting", 0, n_scans)
         for chunk in chunks:
             batch.add(chunk)
+            if drawer is not None:
+                drawer.follow(batch)
             progress("fitting", batch.n_scans, n_scans)
             yield chunk
 
@@ -170,7 +175,9 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
     figure_files: list[Path] = []
 
     def report_files() -> dict[Path, Content]:
-        figures = render_figures(batch, library, file_format=file_format, progress=lambda done, total: progress("drawing figures", done, total))
+        figures = render_figures(
+            batch, library, file_format=file_format, progress=lambda done, total: progress("drawing figures", done, total), drawer=drawer
+        )
         progress("writing files", 0, 0)
         files: dict[Path, Content] = {targets[5]: build_report(batch.result, library, record, figures=figures, sections=request.extra_sections, prediction=prediction)}
         figure_files.extend(figure_folder / f"{figure.key}.{file_format}" for figure in figures if figure.file is not None)
@@ -180,7 +187,11 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
     skipped = () if request.spectra else SPECTRA_FILES
     streamed = {name: request.out / name for name in RESULT_FILES if name != "report.html" and name not in skipped}
     json_extra = None if prediction is None else {"pls": prediction.summary()}
-    write_results_in_chunks(gathered(), streamed, provenance=record, force=request.force, json_extra=json_extra, finish=report_files)
+    try:
+        write_results_in_chunks(gathered(), streamed, provenance=record, force=request.force, json_extra=json_extra, finish=report_files)
+    finally:
+        if drawer is not None:
+            drawer.close()
     for name in skipped:
         # Spectra of an earlier run (replaced with --force) would not match these results.
         (request.out / name).unlink(missing_ok=True)

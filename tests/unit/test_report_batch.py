@@ -2,12 +2,15 @@
 
 from __future__ import annotations
 
+import multiprocessing
+
 import numpy as np
 import pytest
 
 from absolve.library import ComponentCalibration, NoiseModel, ReferenceLibrary
 from absolve.quantify import MixtureResult, concatenate_results, quantify, quantify_chunks
 from absolve.report import figures
+from absolve.report.background import BackgroundFigures
 from absolve.report.batch import ReportBatch, expected_rms_residual
 from absolve.simulate import Band, Instrument, band_spectrum, measure, random_absorptivities
 from absolve.spectra import Spectra
@@ -101,3 +104,33 @@ def test_figures_from_chunks_equal_those_from_the_whole_result(batch: tuple[Spec
     from_whole = figures.render_figures(whole, library, detail=3)
     assert [(f.key, f.place, f.scan, f.caption) for f in from_chunks] == [(f.key, f.place, f.scan, f.caption) for f in from_whole]
     assert [f.scan for f in from_whole if f.place == "scan"] == [*figures.detail_scans(whole, 3)[0], *figures.detail_scans(whole, 3)[1]]
+
+
+def _gathered(spectra: Spectra, library: ReferenceLibrary, drawer: BackgroundFigures | None) -> ReportBatch:
+    gathered = ReportBatch(library, 3)
+    for chunk in quantify_chunks(spectra, library, chunk_scans=7):
+        gathered.add(chunk)
+        if drawer is not None:
+            drawer.follow(gathered)  # as the command does: figures of chosen scans start at once
+    return gathered
+
+
+@pytest.mark.parametrize("file_format", [None, "svg"])
+def test_figures_drawn_in_a_worker_process_equal_those_drawn_here(batch: tuple[Spectra, ReferenceLibrary], file_format: str | None) -> None:
+    spectra, library = batch
+    here = figures.render_figures(_gathered(spectra, library, None), library, file_format=file_format)  # type: ignore[arg-type]
+    with BackgroundFigures(library, file_format) as drawer:  # type: ignore[arg-type]
+        away = figures.render_figures(_gathered(spectra, library, drawer), library, file_format=file_format, drawer=drawer)  # type: ignore[arg-type]
+    assert len([f for f in away if f.place == "scan"]) == 6  # the first three and three flagged ones
+    assert away == here
+
+
+def test_figures_are_drawn_here_when_the_worker_dies(batch: tuple[Spectra, ReferenceLibrary]) -> None:
+    spectra, library = batch
+    here = figures.render_figures(_gathered(spectra, library, None), library)
+    with BackgroundFigures(library, None) as drawer:
+        gathered = _gathered(spectra, library, drawer)
+        for worker in multiprocessing.active_children():
+            worker.kill()
+            worker.join()
+        assert figures.render_figures(gathered, library, drawer=drawer) == here

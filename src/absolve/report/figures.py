@@ -20,7 +20,7 @@ import re
 import textwrap
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Literal
+from typing import TYPE_CHECKING, Literal, Protocol
 
 import numpy as np
 from numpy.typing import NDArray
@@ -36,10 +36,12 @@ if TYPE_CHECKING:
 
 __all__ = [
     "COMPONENT_COLOURS",
+    "FigureDrawer",
     "FigureFormat",
     "OKABE_ITO",
     "RenderedFigure",
     "detail_scans",
+    "draw_figure",
     "figure_bytes",
     "figure_svg",
     "library_figure",
@@ -51,6 +53,7 @@ __all__ = [
     "plot_scan_residual",
     "render_figures",
     "scan_figure",
+    "scan_figure_key",
 ]
 
 FigureFormat = Literal["png", "svg"]
@@ -480,7 +483,8 @@ class RenderedFigure:
     file: bytes | None = None
 
 
-def _file_stem(index: int, name: str) -> str:
+def scan_figure_key(index: int, name: str) -> str:
+    """File stem (and SVG id stem) of the detailed figure of scan ``index`` (0-based) named ``name``."""
     safe = re.sub(r"[^A-Za-z0-9._-]+", "_", name).strip("._")[:60]
     return f"scan-{index + 1:05d}" + (f"-{safe}" if safe else "")
 
@@ -492,6 +496,7 @@ def render_figures(
     detail: int = 12,
     file_format: FigureFormat | None = None,
     progress: ProgressCallback | None = None,
+    drawer: FigureDrawer | None = None,
 ) -> tuple[RenderedFigure, ...]:
     """Draw every figure of the report: the library, the batch overviews, and the chosen scans.
 
@@ -508,6 +513,9 @@ def render_figures(
         Also produce each figure as a file of this format.
     progress : callable, optional
         Called as ``progress(done, total)`` after each figure.
+    drawer : FigureDrawer, optional
+        Draws each figure instead of :func:`draw_figure` in this process (for
+        example in a worker process, ahead of time); the figures are the same.
 
     Returns
     -------
@@ -522,24 +530,63 @@ def render_figures(
         ("residual-sizes", "residual-sizes", None, "Root-mean-square residual per scan against what noise alone would give; scans flagged by the interferent screen are marked in red-orange."),
     ]
     for local, i in enumerate(details.indices):
-        jobs.append((_file_stem(i, whole.scan_names[i]), "scan", local, _scan_caption(details.result, local)))
+        jobs.append((scan_figure_key(i, whole.scan_names[i]), "scan", local, _scan_caption(details.result, local)))
     rendered = []
-    with _svg_settings():
-        for done, (key, place, scan, caption) in enumerate(jobs, start=1):
-            if place == "library":
-                figure = library_figure(library)
-            elif place == "overview":
-                figure = plot_overview(whole).figure
-            elif place == "residual-sizes":
-                figure = plot_residual_sizes(whole, ax=None, expected=batch.expected_rms).figure
-            else:
-                assert scan is not None
-                figure = scan_figure(details.result, library, scan)
-            index = None if scan is None else details.indices[scan]
-            rendered.append(RenderedFigure(key, place, index, caption, figure_svg(figure, f"f{done}"), None if file_format is None else figure_bytes(figure, file_format)))
-            if progress is not None:
-                progress(done, len(jobs))
+    for done, (key, place, scan, caption) in enumerate(jobs, start=1):
+        data = None if place == "library" else whole if scan is None else details.result.take([scan])
+        expected = batch.expected_rms if place == "residual-sizes" else None
+        svg, file = (draw_figure if drawer is None else drawer.draw)(key, place, library, data, expected, file_format)
+        rendered.append(RenderedFigure(key, place, None if scan is None else details.indices[scan], caption, svg, file))
+        if progress is not None:
+            progress(done, len(jobs))
     return tuple(rendered)
+
+
+class FigureDrawer(Protocol):
+    """Something that draws a report figure as :func:`draw_figure` does."""
+
+    def draw(
+        self, key: str, place: str, library: ReferenceLibrary, data: MixtureResult | None,
+        expected: NDArray[np.float64] | None, file_format: FigureFormat | None,
+    ) -> tuple[str, bytes | None]: ...
+
+
+def draw_figure(
+    key: str,
+    place: str,
+    library: ReferenceLibrary,
+    data: MixtureResult | None,
+    expected: NDArray[np.float64] | None,
+    file_format: FigureFormat | None,
+) -> tuple[str, bytes | None]:
+    """One figure of the report as inline SVG text, and as a file when a format is asked for.
+
+    Parameters
+    ----------
+    key : str
+        The figure's file stem; its SVG ids start with ``f-{key}``, so they
+        are unique on the page and the same whichever process draws it.
+    place : {"library", "overview", "residual-sizes", "scan"}
+    library : ReferenceLibrary
+    data : MixtureResult or None
+        The whole batch's numbers for the overviews, the one scan (with its
+        spectra) for a scan figure, None for the library figure.
+    expected : ndarray or None
+        Residual size from noise alone, per scan (``"residual-sizes"`` only).
+    file_format : {"png", "svg"}, optional
+    """
+    with _svg_settings():
+        if place == "library":
+            figure = library_figure(library)
+        elif data is None:
+            raise ValueError(f"the {place!r} figure needs the scans' results")
+        elif place == "overview":
+            figure = plot_overview(data).figure
+        elif place == "residual-sizes":
+            figure = plot_residual_sizes(data, ax=None, expected=expected).figure
+        else:
+            figure = scan_figure(data, library, 0)
+        return figure_svg(figure, f"f-{key}"), None if file_format is None else figure_bytes(figure, file_format)
 
 
 @contextlib.contextmanager
