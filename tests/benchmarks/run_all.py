@@ -19,8 +19,9 @@ whole process
     drawing is a fixed cost of a few seconds whatever the batch size), and with ``--detail 0
     --no-spectra`` as well (no fitted.csv and residuals.csv).
 memory
-    Peak resident memory of those runs (``wait4`` of the child) against the size of the scans as
-    float64 (target <= 3x). A Python process with numpy, scipy and absolve imported holds
+    Peak resident memory of those runs, summed over each run's process tree (``absolve
+    quantify`` draws figures in a worker process for batches of more than one chunk; sampled
+    every 20 ms), against the size of the scans as float64 (target <= 3x). A Python process with numpy, scipy and absolve imported holds
     about 100-200 MB before it reads anything (more than twice these 61 MB of scans), so the
     target is judged on the peak above the same command's on a 10-scan file; the total is
     shown too. (On 100,000 scans x 371 wavelengths the total itself is 2.3x the data:
@@ -40,7 +41,6 @@ import json
 import math
 import os
 import shutil
-import subprocess
 import sys
 import tempfile
 import time
@@ -53,31 +53,27 @@ import numpy as np
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE))
+sys.path.insert(0, str(HERE.parent / "reliability"))
 
 import bench_solver  # noqa: E402  (a sibling script, found through the path above)
+from _reliability import run_sampling_memory  # noqa: E402  (the load check's process-tree memory sampling)
 from _workload import Workload, write_workload  # noqa: E402
 
 READ_ONLY = "import sys, pandas; pandas.read_csv(sys.argv[1])"
-# GNU time measures each child's own peak memory (see run_child); without it memory is not measured.
-TIME = "/usr/bin/time" if Path("/usr/bin/time").exists() else None
 
 
 def run_child(command: Sequence[str]) -> tuple[float, float]:
-    """Wall-clock seconds and peak resident memory (bytes) of one child process.
+    """Wall-clock seconds and peak resident memory (bytes) of one child process and its workers.
 
-    Linux carries a process's peak memory across exec, so a child forked from this (large)
-    process would report at least this process's size; GNU time, small itself, forks the
-    command and reports the command's own peak.
+    The memory is the peak of the summed resident memory of the child's whole process tree
+    (absolve quantify draws figures in a worker process), sampled every 20 ms from /proc.
     """
-    with tempfile.NamedTemporaryFile("r", suffix=".rss") as record:
-        timed = [TIME, "-f", "%M", "-o", record.name, *command] if TIME else list(command)
-        start = time.perf_counter()
-        finished = subprocess.run(timed, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
-        seconds = time.perf_counter() - start
-        if finished.returncode != 0:
-            raise RuntimeError(f"{' '.join(command)} failed ({finished.returncode}):\n{finished.stderr}")
-        kilobytes = record.read().strip().splitlines()[-1] if TIME else "nan"
-    return seconds, float(kilobytes) * 1024.0
+    start = time.perf_counter()
+    finished, peak = run_sampling_memory(command, timeout=3600.0)
+    seconds = time.perf_counter() - start
+    if finished.returncode != 0:
+        raise RuntimeError(f"{' '.join(command)} failed ({finished.returncode}):\n{finished.stderr}")
+    return seconds, peak
 
 
 def absolve_command() -> list[str]:

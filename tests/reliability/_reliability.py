@@ -3,7 +3,9 @@
 from __future__ import annotations
 
 import os
+import subprocess
 import sys
+import time
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -17,6 +19,7 @@ GOOD = CORPUS / "good"
 # The console script installed beside the running interpreter, as the package's users run it.
 CONSOLE_SCRIPT = Path(sys.executable).parent / "absolve"
 SLOW = os.environ.get("ABSOLVE_SLOW") == "1"
+PAGE_BYTES = os.sysconf("SC_PAGE_SIZE") if hasattr(os, "sysconf") else 4096
 
 
 def run(capsys: pytest.CaptureFixture[str], argv: Sequence[str | Path]) -> tuple[int, str, str]:
@@ -91,3 +94,34 @@ def write_large_scan_table(path: Path, grid: np.ndarray, absorbance: np.ndarray,
             for wavelength, row in zip(grid[start : start + rows.shape[0]], cells):
                 stream.write(f"{wavelength:g},".encode())
                 stream.write(row.tobytes())
+
+
+def tree_resident_bytes(root: int) -> int:
+    """Resident memory of a process and all its descendants (a worker process counts), from /proc; 0 without it."""
+    parent: dict[int, int] = {}
+    resident: dict[int, int] = {}
+    for entry in Path("/proc").glob("[0-9]*"):
+        try:
+            stat = (entry / "stat").read_text()
+            # Fields after the parenthesised command name: state, parent id, ...; resident pages is the 24th field of stat.
+            fields = stat[stat.rindex(")") + 2 :].split()
+            parent[int(entry.name)], resident[int(entry.name)] = int(fields[1]), int(fields[21]) * PAGE_BYTES
+        except (OSError, ValueError, IndexError):
+            continue
+    tree, added = {root}, {root}
+    while added:
+        added = {pid for pid, ppid in parent.items() if ppid in tree} - tree
+        tree |= added
+    return sum(resident.get(pid, 0) for pid in tree)
+
+
+def run_sampling_memory(command: Sequence[str | Path], timeout: float) -> tuple[subprocess.CompletedProcess[str], float]:
+    """Run a command; its result and the peak of its process tree's summed resident memory, sampled every 20 ms."""
+    child = subprocess.Popen([str(part) for part in command], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    peak = 0
+    deadline = time.monotonic() + timeout
+    while child.poll() is None and time.monotonic() < deadline:
+        peak = max(peak, tree_resident_bytes(child.pid))
+        time.sleep(0.02)
+    stdout, stderr = child.communicate(timeout=max(deadline - time.monotonic(), 1.0))
+    return subprocess.CompletedProcess(child.args, child.returncode, stdout, stderr), float(peak)
