@@ -34,6 +34,8 @@ TIME_LIMIT_S = 600.0
 #   with every file written chunk by chunk and the report made from per-scan numbers and the drawn
 #   scans only (2026-12-02, later): x 50: 18 s, peak 348 MB (budget 453 MB); x 371: 76 s, peak 772 MB (budget 1432 MB);
 #   with chunks of 2,048 scans and the writer holding one chunk: x 50: 16 s, 307 MB; x 371: 47 s, 688 MB.
+#   measured as the process tree (the figure worker counts; it holds ~110 MB + 12 MB for the pool's resource
+#   tracker), 2026-12-02 later: x 50: 31-35 s on a busier machine, 425 MB (301 MB without the worker).
 LARGE = pytest.mark.skipif(not SLOW, reason="100,000 x 371 wavelengths (a 300 MB file, minutes): set ABSOLVE_SLOW=1 to run it")
 
 
