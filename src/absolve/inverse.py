@@ -71,6 +71,7 @@ from scipy import stats
 from scipy.signal import savgol_filter
 
 from .errors import AbsolveError
+from .residual_limits import q_limit
 from .spectra import Spectra
 from .units import check_unit
 
@@ -114,18 +115,13 @@ def _settings_error(parameter: str, expected: str, got: object, fix: str) -> Abs
 def q_residual_limit(residual_eigenvalues: ArrayLike, alpha: float) -> float:
     """Upper limit of the Q residual (squared prediction error) at level ``alpha``.
 
-    Jackson & Mudholkar (Technometrics 21 (1979) 341), formula from memory:
-    with theta_i = sum of the i-th powers of the residual eigenvalues,
-    h0 = 1 - 2 theta1 theta3 / (3 theta2^2) and z the standard normal
-    (1 - alpha) quantile,
-
-        Q_lim = theta1 [z sqrt(2 theta2 h0^2) / theta1 + 1 + theta2 h0 (h0 - 1) / theta1^2]^(1 / h0).
-
-    When h0 <= 0 (one residual eigenvalue dominates many small ones) the power
-    is meaningless and the scaled chi-squared approximation g chi2(h) with
-    g = theta2 / theta1, h = theta1^2 / theta2 is used instead (Box, Ann. Math.
-    Stat. 25 (1954) 290; as used by Nomikos & MacGregor, Technometrics 37
-    (1995) 41; from memory).
+    Jackson & Mudholkar's (1979) approximation (:func:`absolve.residual_limits.q_limit`).
+    When ``h0 = 1 - 2 theta1 theta3 / (3 theta2^2) <= 0`` (one residual
+    eigenvalue dominates many small ones) that approximation overstates the
+    limit, and Box's (1954) scaled chi-squared ``g chi2(h)`` with
+    ``g = theta2 / theta1``, ``h = theta1^2 / theta2`` is used instead (as by
+    Nomikos & MacGregor, Technometrics 37 (1995) 41; from memory); ``theta_k``
+    is the sum of the k-th powers of the eigenvalues.
 
     Parameters
     ----------
@@ -143,11 +139,7 @@ def q_residual_limit(residual_eigenvalues: ArrayLike, alpha: float) -> float:
     lam = np.asarray(residual_eigenvalues, dtype=np.float64)
     theta1, theta2, theta3 = (float(np.sum(lam**power)) for power in (1, 2, 3))
     h0 = 1.0 - 2.0 * theta1 * theta3 / (3.0 * theta2**2)
-    if h0 <= 0:
-        return float(theta2 / theta1 * stats.chi2.ppf(1.0 - alpha, theta1**2 / theta2))
-    z = stats.norm.ppf(1.0 - alpha)
-    bracket = z * np.sqrt(2.0 * theta2 * h0**2) / theta1 + 1.0 + theta2 * h0 * (h0 - 1.0) / theta1**2
-    return float(theta1 * bracket ** (1.0 / h0))
+    return float(q_limit(lam, alpha, method="jackson-mudholkar" if h0 > 0 else "box"))
 
 
 def hotelling_t2_limit(n_components: int, n_samples: int, alpha: float) -> float:

@@ -26,7 +26,6 @@ from absolve.screening import (
     Screening,
     explain_with_suspects,
     prewhiten,
-    q_limit,
     screen_residuals,
     smooth_basis,
 )
@@ -485,45 +484,6 @@ def test_suspects_reject_mismatched_candidates() -> None:
     with pytest.raises(AbsolveError, match="nonnegative"):
         explain_with_suspects(GRID, measured, design, np.ones(3, bool), candidates, ["a", "b"], NOISE)
 
-
-# --------------------------------------------------------------------------- Q limit
-
-
-def test_q_limit_box_is_exact_for_equal_eigenvalues() -> None:
-    # Q = c * chi2(n) exactly; reference quantile from scipy.stats.chi2.
-    for n, c, alpha in ((10, 1.0, 0.05), (3, 2.5, 0.01), (40, 0.2, 0.1)):
-        assert q_limit([c] * n, alpha, method="box") == pytest.approx(c * scipy.stats.chi2.isf(alpha, n), rel=1e-12)
-        assert q_limit([c] * n, alpha, method="imhof") == pytest.approx(c * scipy.stats.chi2.isf(alpha, n), rel=1e-6)
-        # Jackson & Mudholkar reduce to a Wilson-Hilferty-type cube-root approximation here: within 3 %.
-        assert q_limit([c] * n, alpha) == pytest.approx(c * scipy.stats.chi2.isf(alpha, n), rel=0.03)
-
-
-@pytest.mark.slow
-def test_q_limit_against_monte_carlo_quantiles() -> None:
-    rng = np.random.default_rng(24)
-    spectra = {"geometric": 0.7 ** np.arange(12), "spread": np.linspace(0.1, 3.0, 40)}
-    for name, eigenvalues in spectra.items():
-        draws = (rng.standard_normal((200_000, eigenvalues.size)) ** 2) @ eigenvalues
-        for alpha in (0.05, 0.01):
-            empirical = np.quantile(draws, 1.0 - alpha)
-            # Imhof is exact up to quadrature error: Monte Carlo error of 200 000 draws is well under 1 %.
-            assert q_limit(eigenvalues, alpha, method="imhof") == pytest.approx(empirical, rel=0.01), name
-            # The moment approximations: within 5 % for these well-spread spectra (measured 0.2-4.4 %).
-            assert q_limit(eigenvalues, alpha) == pytest.approx(empirical, rel=0.05), name
-            assert q_limit(eigenvalues, alpha, method="box") == pytest.approx(empirical, rel=0.05), name
-
-
-def test_q_limit_batches_and_validates() -> None:
-    sets = np.array([[1.0, 0.5, 0.25], [2.0, 2.0, 2.0]])
-    limits = q_limit(sets, 0.05)
-    assert isinstance(limits, np.ndarray) and limits.shape == (2,)
-    assert limits[0] == pytest.approx(q_limit(sets[0], 0.05))
-    with pytest.raises(AbsolveError, match="unknown Q-limit method"):
-        q_limit([1.0], 0.05, method="exactly")  # type: ignore[arg-type]
-    with pytest.raises(AbsolveError, match="eigenvalues must be finite"):
-        q_limit([-1.0, 2.0], 0.05)
-    with pytest.raises(AbsolveError, match="alpha must be"):
-        q_limit([1.0], 0.0)
 
 
 def test_screening_result_fields_line_up() -> None:
