@@ -476,7 +476,15 @@ def _noise_model(fit: _Fit, wavelengths: NDArray[np.float64]) -> NoiseModel | No
     chunks = np.array_split(order, max(1, min(30, order.size // 30)))
     bin_level = np.array([np.mean(x[c] ** 2) for c in chunks])
     bin_variance = np.array([np.mean(y[c]) for c in chunks])
-    terms, _ = optimize.nnls(np.column_stack([np.ones_like(bin_level), bin_level]), bin_variance)
+    design = np.column_stack([np.ones_like(bin_level), bin_level])
+    terms, _ = optimize.nnls(design, bin_variance)
+    for _ in range(3):
+        # A bin's variance is known to about the same relative precision at every level, so
+        # the fit weighs relative misfit: otherwise the few highest bins, where any systematic
+        # misfit (stray light, curvature) swells the residuals, decide the floor too, and can
+        # drive it to zero (measured: floor 0.0001 for a true 0.0015, and clean scans flagged).
+        predicted = np.maximum(design @ terms, 1e-3 * float(np.median(bin_variance)))
+        terms, _ = optimize.nnls(design / predicted[:, None], bin_variance / predicted)
     floor, proportional = float(np.sqrt(terms[0])), float(np.sqrt(terms[1]))
     if floor == 0 and proportional == 0:
         return None

@@ -275,3 +275,23 @@ def test_summary_is_json_safe_and_the_report_names_everything(clean_runs) -> Non
     given = library_from_absorptivities([400.0, 500.0], [[0.1, 0.2]], ["known"], "mol/L")
     given_text = library_report(given)
     assert "known" in given_text and "warning: known: no standards" in given_text
+
+
+def test_noise_floor_survives_systematic_misfit_at_high_absorbance() -> None:
+    # Standards to a peak absorbance of ~2.4 on an instrument with 0.05 % stray light: the highest
+    # points leave the line a little whatever the correction, and their large residuals must not
+    # decide the noise floor as well (they drove it to 0.0001 for a true 0.0015 in one of these).
+    # The truth is the simulated instrument's own noise.
+    grid = np.arange(400.0, 601.0)
+    instrument = Instrument(stray_light=0.0005, **NOISE)
+    levels = np.array([2.0, 5.0, 8.0, 12.0, 16.0, 22.0])
+    floors = []
+    for seed in range(700, 716):
+        rng = np.random.default_rng(seed)
+        truth = random_absorptivities(grid, 2, rng) * 0.08
+        conc = np.array([np.eye(2)[k] * level for k in range(2) for level in levels] + [np.zeros(2)] * 2)
+        standards = Spectra(grid, measure(grid, conc @ truth, instrument, rng), [f"s{i}" for i in range(len(conc))])
+        noise = calibrate(standards, conc, ["a", "b"], "mg/L").noise
+        assert noise is not None
+        floors.append(noise.floor)
+    assert np.all(np.abs(np.array(floors) / NOISE["noise_floor"] - 1.0) < 0.5), np.round(floors, 5)
