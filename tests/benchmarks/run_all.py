@@ -21,9 +21,10 @@ whole process
 memory
     Peak resident memory of those runs, summed over each run's process tree (``absolve
     quantify`` draws figures in a worker process for batches of more than one chunk; sampled
-    every 20 ms), against the size of the scans as float64 (target <= 3x). A Python process with numpy, scipy and absolve imported holds
-    about 100-200 MB before it reads anything (more than twice these 61 MB of scans), so the
-    target is judged on the peak above the same command's on a 10-scan file; the total is
+    every 20 ms), against the size of the scans as float64 (target <= 3x). A Python process
+    with numpy, scipy and absolve imported holds about 100-200 MB before it reads anything
+    (more than twice these 61 MB of scans), so the target is judged on the peak above the same
+    command's on a 10-scan file; the total is
     shown too. (On 100,000 scans x 371 wavelengths the total itself is 2.3x the data:
     tests/reliability/test_load.py.)
 planner

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import os
+import signal
 import subprocess
 import sys
+import tempfile
 import time
 from collections.abc import Sequence
 from pathlib import Path
@@ -116,12 +118,22 @@ def tree_resident_bytes(root: int) -> int:
 
 
 def run_sampling_memory(command: Sequence[str | Path], timeout: float) -> tuple[subprocess.CompletedProcess[str], float]:
-    """Run a command; its result and the peak of its process tree's summed resident memory, sampled every 20 ms."""
-    child = subprocess.Popen([str(part) for part in command], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    peak = 0
-    deadline = time.monotonic() + timeout
-    while child.poll() is None and time.monotonic() < deadline:
-        peak = max(peak, tree_resident_bytes(child.pid))
-        time.sleep(0.02)
-    stdout, stderr = child.communicate(timeout=max(deadline - time.monotonic(), 1.0))
-    return subprocess.CompletedProcess(child.args, child.returncode, stdout, stderr), float(peak)
+    """Run a command; its result and the peak of its process tree's summed resident memory, sampled every 20 ms.
+
+    Output goes to temporary files, not pipes, so a chatty command cannot stall on a full pipe
+    while it is being sampled; past ``timeout`` seconds its whole process group is killed.
+    """
+    with tempfile.TemporaryFile("w+") as out, tempfile.TemporaryFile("w+") as err:
+        child = subprocess.Popen([str(part) for part in command], stdout=out, stderr=err, text=True, start_new_session=True)
+        peak = 0
+        deadline = time.monotonic() + timeout
+        while child.poll() is None:
+            if time.monotonic() > deadline:
+                os.killpg(child.pid, signal.SIGKILL)
+                child.wait()
+                break
+            peak = max(peak, tree_resident_bytes(child.pid))
+            time.sleep(0.02)
+        out.seek(0)
+        err.seek(0)
+        return subprocess.CompletedProcess(child.args, child.returncode, out.read(), err.read()), float(peak)

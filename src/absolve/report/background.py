@@ -94,9 +94,9 @@ class BackgroundFigures:
         waiting = sum(not future.done() for future in self._futures.values())
         try:
             for local, index in enumerate(details.indices):
-                key = scan_figure_key(index, names[local])
                 if waiting >= _AHEAD:
                     break
+                key = scan_figure_key(index, names[local])
                 if key not in self._futures:
                     self._futures[key] = self._pool.submit(_draw_in_worker, key, "scan", details.result.take([local]), None, self.file_format)
                     waiting += 1
