@@ -83,6 +83,7 @@ def check_scans(
     wavelength_range: tuple[float | None, float | None] = (None, None),
     path_length: float = 1.0,
     alpha: float = 0.05,
+    learn_library_error: bool = False,
 ) -> CheckResult:
     """Screen every scan against the library, and test candidate interferents.
 
@@ -96,8 +97,15 @@ def check_scans(
         Candidate interferent spectra (absorbance per unit amount per cm when
         ``suspect_unit_per_cm``; otherwise as measured, amounts then come out
         as multiples of the candidate scan), interpolated onto the scans' grid.
+    learn_library_error : bool, default False
+        Set the library's fixed error, learned from these scans, aside before
+        the screen (see :func:`absolve.quantify.quantify`); the suspects are
+        tested on the uncorrected scans.
     """
-    mixture = quantify(spectra, library, baseline=baseline, wavelength_range=wavelength_range, path_length=path_length, alpha=alpha)
+    mixture = quantify(
+        spectra, library, baseline=baseline, wavelength_range=wavelength_range, path_length=path_length, alpha=alpha,
+        learn_library_error=learn_library_error,
+    )
     if suspects is None:
         return CheckResult(mixture, None)
     if library.noise is None:

@@ -46,7 +46,7 @@ from .errors import AbsolveError
 from .library import NoiseModel, ReferenceLibrary
 from .photometry import correct_stray_light
 from .noise import ar1_coefficients, correlated_squared_norms, correlated_weighted_norms, effective_points, whiten
-from .screening import Screening, _point_patterns as point_patterns, screen_residuals
+from .screening import LibraryBias, Screening, _point_patterns as point_patterns, estimate_library_bias, screen_residuals
 from .solver import MAX_CONDITION, solve_nonnegative
 from .spectra import Spectra
 
@@ -63,6 +63,9 @@ _COVERAGE_PROBABILITY = 0.9545  # the probability that k = 2 gives for a normal 
 _CHUNK = 1024  # scans per block of per-point work, bounding memory (the covariance step holds some 10 values per point)
 _SCREEN_BLOCK = 1024  # scans per call of the interferent screen (its working arrays are some 20 times the block's values)
 _MIN_SCREEN_POINTS = 10  # fewer wavelengths leave no room for a residual test
+# Scans (spread evenly over the batch) from which the library's fixed error is learned: at 4096 the
+# estimate's own noise is a fraction of a percent of a scan's, and its working arrays stay near 100 MB.
+_LIBRARY_ERROR_SCANS = 4096
 
 
 @dataclass(frozen=True, eq=False)
@@ -319,6 +322,7 @@ def quantify(
     path_length_tolerance: float = 0.0,
     dilution_tolerance: float = 0.0,
     alpha: float = 0.05,
+    learn_library_error: bool = False,
 ) -> MixtureResult:
     """Concentrations of the library's components in every scan, with uncertainties and diagnostics.
 
@@ -344,6 +348,16 @@ def quantify(
         Relative standard uncertainties of path length and dilution.
     alpha : float
         Significance level of the residual test that sets ``interferent``.
+    learn_library_error : bool, default False
+        Before the interferent screen, learn the library's fixed absorptivity
+        error from this batch's residuals and set it aside
+        (:func:`absolve.screening.estimate_library_bias`, two passes around a
+        screen of up to 4096 scans spread over the batch). It keeps an
+        imperfect library from flagging many clean scans, but it also takes
+        away an impurity that follows one component in most scans (an impure
+        dye lot). Concentrations, uncertainties and the written residuals are
+        unchanged; only the screen sees the corrected residuals. What was
+        done is recorded in ``settings["library_error"]``.
 
     Returns
     -------
@@ -355,7 +369,8 @@ def quantify(
     working memory beyond the inputs and the result stays bounded; for
     batches whose result does not fit in memory, see :func:`quantify_chunks`.
     """
-    job = _Job(spectra, library, baseline, wavelength_range, path_length, dilution, ceiling, path_length_tolerance, dilution_tolerance, alpha)
+    job = _Job(spectra, library, baseline, wavelength_range, path_length, dilution, ceiling, path_length_tolerance, dilution_tolerance, alpha,
+               learn_library_error=learn_library_error)
     return job.result(0, job.n_scans)
 
 
@@ -372,13 +387,15 @@ def quantify_chunks(
     path_length_tolerance: float = 0.0,
     dilution_tolerance: float = 0.0,
     alpha: float = 0.05,
+    learn_library_error: bool = False,
 ) -> Iterator[MixtureResult]:
     """:func:`quantify`, handed out ``chunk_scans`` consecutive scans at a time.
 
     Each chunk's :class:`MixtureResult` holds the numbers of the
     corresponding scans of ``quantify(spectra, library, ...)``: every scan is
     fitted before the first chunk is made, so what is estimated from the
-    whole batch (the noise model, when the library has none) is the same.
+    whole batch (the noise model, when the library has none, and the
+    library's error with ``learn_library_error``) is the same.
     They agree to rounding, not always to the last bit: BLAS products can
     round differently for a different number of rows in a call.
     Only one chunk's fitted and residual spectra exist at a time, so a
@@ -398,7 +415,8 @@ def quantify_chunks(
     """
     if isinstance(chunk_scans, bool) or not isinstance(chunk_scans, (int, np.integer)) or chunk_scans < 1:
         raise AbsolveError(f"The 'chunk_scans' parameter of quantify_chunks must be an integer >= 1; got {chunk_scans!r} instead.")
-    job = _Job(spectra, library, baseline, wavelength_range, path_length, dilution, ceiling, path_length_tolerance, dilution_tolerance, alpha)
+    job = _Job(spectra, library, baseline, wavelength_range, path_length, dilution, ceiling, path_length_tolerance, dilution_tolerance, alpha,
+               learn_library_error=learn_library_error)
     return (job.result(start, min(start + int(chunk_scans), job.n_scans)) for start in range(0, job.n_scans, int(chunk_scans)))
 
 
@@ -465,7 +483,7 @@ class _Job:
     def __init__(
         self, spectra: Spectra, library: ReferenceLibrary, baseline: str, wavelength_range: tuple[float | None, float | None],
         path_length: float, dilution: float, ceiling: float, tol_b: float, tol_d: float, alpha: float,
-        pooled: _Pool | None = None,
+        pooled: _Pool | None = None, learn_library_error: bool = False,
     ) -> None:
         _check_options(baseline, path_length, dilution, ceiling, tol_b, tol_d, alpha)
         scans = spectra.to_absorbance()
@@ -498,6 +516,8 @@ class _Job:
         self._find_used_points()
         self.pool = pooled if pooled is not None or library.noise is not None else _Pool()
         self._fit(collect=pooled is None and library.noise is None)
+        self.learn_library_error = learn_library_error
+        self.library_error = self._learn_library_error() if learn_library_error else None
 
     def corrected(self, values: NDArray[np.float64]) -> NDArray[np.float64]:
         """Measured absorbance with the library's stray-light correction (the values that are fitted)."""
@@ -666,6 +686,7 @@ class _Job:
                 "dilution_tolerance": tol_d,
                 "alpha": alpha,
                 "noise_model": "calibration" if library.noise is not None else "scan residuals",
+                "library_error": self.library_error_summary(),
             },
         )
 
@@ -712,31 +733,105 @@ class _Job:
 
         The residual also holds the calibration's absorptivity errors times the
         concentrations; that variance is added to the noise model's so that an
-        imperfect library is not mistaken for an interferent. Without a noise
-        model in the library, one is estimated from the batch's residuals: the
-        screen's main test is a ratio within each scan, so only the correlation
-        length matters, and that is a property of the instrument.
+        imperfect library is not mistaken for an interferent, and when the
+        library's fixed error was learned from the batch, it is taken out first.
+        Without a noise model in the library, one is estimated from the batch's
+        residuals: the screen's main test is a ratio within each scan, so only
+        the correlation length matters, and that is a property of the instrument.
         """
         n = stop - start
-        alpha = self.options[-1]
-        grid = self.grid
-        if grid.size < _MIN_SCREEN_POINTS:
-            return _unscreened(n, alpha, f"not screened: {grid.size} wavelengths are too few")
-        model = self.library.noise if self.library.noise is not None else self.pool.noise_model(grid)
-        fitted_ok = self.fitted_ok[start:stop]
+        if self.grid.size < _MIN_SCREEN_POINTS:
+            return _unscreened(n, self.options[-1], f"not screened: {self.grid.size} wavelengths are too few")
+        correction = self._library_error_correction(start, stop)
+        screened = residuals if correction is None else residuals - correction
+        usable = used & np.isfinite(screened) & self.fitted_ok[start:stop, None]
+        return self._screen_rows(screened, out.fitted, out.concentration, usable, chunk_groups, diagnose=True)
+
+    def _screen_rows(
+        self, residuals: NDArray[np.float64], fitted: NDArray[np.float64], coefficients: NDArray[np.float64], usable: NDArray[np.bool_],
+        groups: NDArray[np.intp], *, diagnose: bool,
+    ) -> Screening:
+        """Screen of the given scans (``coefficients``: the library columns' fitted coefficients), in blocks of bounded size."""
+        model = self.library.noise if self.library.noise is not None else self.pool.noise_model(self.grid)
+        n = residuals.shape[0]
         # Blocks of scans in used-point order, so that each pattern's geometry is made about once.
-        order = np.argsort(chunk_groups, kind="stable")
+        order = np.argsort(groups, kind="stable")
         parts = []
         for first in range(0, n, _SCREEN_BLOCK):
             block = np.sort(order[first : first + _SCREEN_BLOCK])
-            resid = residuals[block]
-            extra = np.nan_to_num(out.concentration[block]) ** 2 @ self.std_error**2
-            usable = used[block] & np.isfinite(resid) & fitted_ok[block, None]
+            extra = np.nan_to_num(coefficients[block]) ** 2 @ self.std_error**2
             parts.append((block, screen_residuals(
-                grid, np.nan_to_num(resid), np.nan_to_num(out.fitted[block]), self.design, model,
-                usable=usable, alpha=alpha, extra_variance=extra, null_scale=self.library.screening_scale,
+                self.grid, np.nan_to_num(residuals[block]), np.nan_to_num(fitted[block]), self.design, model,
+                usable=usable[block], alpha=self.options[-1], extra_variance=extra, null_scale=self.library.screening_scale,
+                diagnose=diagnose,
             )))
         return _merge_screenings(parts, n)
+
+    def _learn_library_error(self) -> _LearnedError | None:
+        """The library's fixed error learned from up to ``_LIBRARY_ERROR_SCANS`` fitted scans spread over the batch.
+
+        Two passes (:func:`absolve.screening.estimate_library_bias`): estimate
+        from every scan of the sample, screen the corrected residuals, and
+        estimate again without the scans that screen flags, so that scans with
+        an interferent do not pull on the estimate. None when the scans have
+        too few wavelengths to be screened at all.
+        """
+        if self.grid.size < _MIN_SCREEN_POINTS:
+            return None
+        rows = np.flatnonzero(self.fitted_ok)
+        if rows.size > _LIBRARY_ERROR_SCANS:
+            rows = rows[np.round(np.linspace(0, rows.size - 1, _LIBRARY_ERROR_SCANS)).astype(np.intp)]
+        residuals, fitted = self._residuals_of(rows)
+        coefficients = self.coefficients[rows, : self.n_comp]
+        usable = np.isfinite(residuals)
+        first = estimate_library_bias(residuals, coefficients, usable)
+        flagged = np.zeros(rows.size, dtype=bool)
+        if first.applied:
+            flagged = self._screen_rows(first.corrected, fitted, coefficients, usable, self.group_of[rows], diagnose=False).flagged
+        final = estimate_library_bias(residuals, coefficients, usable, exclude=flagged)
+        return _LearnedError(final, rows, np.where(usable, residuals - final.corrected, 0.0), int(np.count_nonzero(flagged)))
+
+    def _residuals_of(self, rows: NDArray[np.intp]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """Residual and fitted spectra of fitted scans ``rows`` on the whole grid (NaN where a point is not used)."""
+        residuals = np.full((rows.size, self.grid.size), np.nan)
+        fitted = np.full_like(residuals, np.nan)
+        groups = self.group_of[rows]
+        for index in np.unique(groups):
+            group = self.groups[index]
+            assert group.design is not None  # fitted scans only
+            local = np.flatnonzero(groups == index)
+            cells = np.ix_(local, group.points)
+            fitted[cells] = self.coefficients[rows[local]] @ group.design.T
+            residuals[cells] = self.corrected(self.measured[np.ix_(rows[local], group.points)]) - fitted[cells]
+        return residuals, fitted
+
+    def _library_error_correction(self, start: int, stop: int) -> NDArray[np.float64] | None:
+        """What the learned library error puts into the residuals of scans ``start`` to ``stop - 1`` (None when not learned)."""
+        learned = self.library_error
+        if learned is None or not learned.bias.applied:
+            return None
+        correction = np.nan_to_num(self.coefficients[start:stop, : self.n_comp]) @ learned.bias.bias.T
+        # Scans in the estimate are corrected with the estimate made without them (leave-one-out).
+        inside = (learned.rows >= start) & (learned.rows < stop)
+        correction[learned.rows[inside] - start] = learned.sample_correction[inside]
+        return correction
+
+    def library_error_summary(self) -> dict[str, Any] | None:
+        """JSON-safe record of the learned library error (None when it was not asked for)."""
+        learned = self.library_error
+        if learned is None:
+            return None if not self.learn_library_error else {"applied": False, "message": "library error not learned: too few wavelengths to screen"}
+        return {**learned.bias.summary(), "scans_in_estimate": int(learned.rows.size - learned.n_flagged), "scans_flagged_first": learned.n_flagged}
+
+
+@dataclass(frozen=True)
+class _LearnedError:
+    """The library's fixed error learned from a sample of the batch (see :meth:`_Job._learn_library_error`)."""
+
+    bias: LibraryBias
+    rows: NDArray[np.intp]  # the sampled scans, increasing
+    sample_correction: NDArray[np.float64]  # their leave-one-out corrections, (rows.size, n_wavelengths)
+    n_flagged: int  # sampled scans the first pass flagged and the final estimate left out
 
 
 class _Pool:

@@ -116,6 +116,9 @@ def mixture_report(result: MixtureResult, *, max_scans: int = 200) -> str:
         lines.append(f"{flag}: {FLAG_TEXT[flag]}")
     if "interferent" in used:
         lines.append(f"Interferent screen: {result.screening.batch_note()}")
+    learned = result.settings.get("library_error")
+    if learned:
+        lines.append(f"Library error from this batch: {learned['message']}.")
     return "\n".join(lines)
 
 

@@ -69,6 +69,7 @@ class QuantifyRequest:
     figures: str | None = None
     detail: int = 12
     spectra: bool = True
+    learn_library_error: bool = False
     extra_sections: list[tuple[str, str]] = field(default_factory=list)
 
 
@@ -104,6 +105,7 @@ def _options(request: QuantifyRequest) -> dict[str, Any]:
         "detail": request.detail,
         "figures": request.figures,
         "spectra": request.spectra,
+        "learn_library_error": request.learn_library_error,
     }
 
 
@@ -113,6 +115,8 @@ def _check_report_options(request: QuantifyRequest) -> FigureFormat | None:
         raise AbsolveError(f"--figures must be one of {', '.join(choices)}; got {request.figures!r}", fix="e.g. --figures svg")
     if request.figures is not None and request.library is None:
         raise AbsolveError("--figures needs --library: a PLS model's report has no spectra figures", fix="leave out --figures")
+    if request.learn_library_error and request.library is None:
+        raise AbsolveError("--learn-library-error needs --library: it learns the library's error", fix="add --library, or leave the option out")
     if request.detail < 0:
         raise AbsolveError(f"--detail must be 0 or more; got {request.detail}", fix="e.g. --detail 12")
     return request.figures  # type: ignore[return-value]
@@ -155,6 +159,7 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
         ceiling=request.ceiling,
         path_length_tolerance=request.path_length_tolerance,
         dilution_tolerance=request.dilution_tolerance,
+        learn_library_error=request.learn_library_error,
     )
     # Each chunk is written as it comes and leaves only its per-scan numbers and the
     # scans the report draws, so memory stays bounded whatever the batch size.

@@ -26,6 +26,11 @@ QuantityOption = Annotated[Optional[str], typer.Option("--quantity", help="absor
 DecimalOption = Annotated[str, typer.Option("--decimal", help="Decimal mark of the scan tables ('.' or ',').")]
 FitRangeOption = Annotated[Optional[str], typer.Option("--range", help="Use wavelengths LOW:HIGH nm.")]
 KeepRangeOption = Annotated[Optional[str], typer.Option("--range", help="Keep wavelengths LOW:HIGH nm.")]
+LearnLibraryErrorOption = Annotated[bool, typer.Option(
+    "--learn-library-error",
+    help="Learn the library's fixed absorptivity error from this batch (35+ scans) and set it aside before the interferent "
+    "screen: fewer false alarms from an imperfect library, but an impurity that follows one component in most scans goes unseen.",
+)]
 
 
 def parse_range(text: str | None, option: str = "--range") -> tuple[float | None, float | None]:

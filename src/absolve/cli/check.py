@@ -17,7 +17,7 @@ from ..io.tables import read_scans
 from ..render import ProgressLine, format_table
 from ..spectra import Spectra
 from ._app import app
-from ._common import BaselineOption, DecimalOption, FitRangeOption, PathLengthOption, QuantityOption, parse_range
+from ._common import BaselineOption, DecimalOption, FitRangeOption, LearnLibraryErrorOption, PathLengthOption, QuantityOption, parse_range
 
 if TYPE_CHECKING:
     from ..checking import CheckResult
@@ -33,6 +33,7 @@ def check(
     wavelength_range: FitRangeOption = None,
     path_length: PathLengthOption = 1.0,
     alpha: Annotated[float, typer.Option("--alpha", help="False-alarm rate of the screen.")] = 0.05,
+    learn_library_error: LearnLibraryErrorOption = False,
     quantity: QuantityOption = None,
     decimal: DecimalOption = ".",
     force: Annotated[bool, typer.Option("--force", help="Replace existing check files.")] = False,
@@ -53,6 +54,7 @@ def check(
         result = check_scans(
             spectra, reference, suspects=candidates, baseline=baseline,  # type: ignore[arg-type]
             wavelength_range=parse_range(wavelength_range), path_length=path_length, alpha=alpha,
+            learn_library_error=learn_library_error,
         )
         rows = result.rows()
         if out is not None:
@@ -122,4 +124,7 @@ def _table(result: CheckResult, rows: list[dict]) -> str:
         lines.append(f"{row['scan']}: {row['message']}")
     screening = result.mixture.screening
     lines.append(f"Screen: {screening.method}; false-alarm rate {screening.alpha:g}. {screening.batch_note()}")
+    learned = result.mixture.settings.get("library_error")
+    if learned:
+        lines.append(f"Library error from this batch: {learned['message']}.")
     return "\n".join(lines)

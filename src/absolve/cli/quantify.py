@@ -10,7 +10,7 @@ import typer
 from ..errors import AbsolveError
 from ..render import ProgressLine
 from ._app import app
-from ._common import BaselineOption, DecimalOption, FitRangeOption, PathLengthOption, QuantityOption, parse_range
+from ._common import BaselineOption, DecimalOption, FitRangeOption, LearnLibraryErrorOption, PathLengthOption, QuantityOption, parse_range
 
 
 @app.command()
@@ -32,6 +32,7 @@ def quantify(
     figures: Annotated[Optional[str], typer.Option("--figures", help="Also save the report's figures as png or svg files in OUT/figures/.")] = None,
     detail: Annotated[int, typer.Option("--detail", help="Draw the first N scans in detail (and up to N flagged ones).")] = 12,
     spectra: Annotated[bool, typer.Option("--spectra/--no-spectra", help="Write fitted.csv and residuals.csv (as large as the scans themselves).")] = True,
+    learn_library_error: LearnLibraryErrorOption = False,
     force: Annotated[bool, typer.Option("--force", help="Replace existing result files.")] = False,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors (no progress line either).")] = False,
     as_json: Annotated[bool, typer.Option("--json", help="Print the results as JSON instead of a table.")] = False,
@@ -46,6 +47,7 @@ def quantify(
         wavelength_range=parse_range(wavelength_range), path_length=path_length, dilution=dilution,
         path_length_tolerance=path_tolerance, dilution_tolerance=dilution_tolerance, ceiling=ceiling,
         quantity=quantity, decimal=decimal, blank=blank, force=force, figures=figures, detail=detail, spectra=spectra,
+        learn_library_error=learn_library_error,
     )
     # Progress goes to stderr and only to a terminal, so --json output on stdout stays pure JSON.
     with ProgressLine(quiet=quiet) as progress:

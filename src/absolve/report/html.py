@@ -269,6 +269,8 @@ def _method(result: MixtureResult, library: ReferenceLibrary, provenance: dict[s
 
 
 def _setting_text(value: Any) -> str:
+    if isinstance(value, dict):  # a step's own record (e.g. the learned library error) says what it did
+        return str(value.get("message", value))
     if isinstance(value, float):
         return format(value, "g")
     if isinstance(value, (list, tuple)):
