@@ -29,15 +29,15 @@ ALPHA = 0.05
 
 
 @pytest.fixture
-def setting(simulated_standards: type) -> Callable[[int, int], tuple[ReferenceLibrary, np.ndarray, np.ndarray, np.random.Generator]]:
-    """(seed, n_scans) -> a library of two overlapping dyes with a smooth error in the first one, the true spectra,
-    clean sample concentrations and the generator to measure them with."""
+def setting(simulated_standards: type) -> Callable[..., tuple[ReferenceLibrary, np.ndarray, np.ndarray, np.random.Generator]]:
+    """(seed, n_scans, size=0.03) -> a library of two overlapping dyes with a smooth error in the first one (``size`` of
+    its peak; 0: as calibrated), the true spectra, clean sample concentrations and the generator to measure them with."""
 
-    def make(seed: int, n_scans: int) -> tuple[ReferenceLibrary, np.ndarray, np.ndarray, np.random.Generator]:
+    def make(seed: int, n_scans: int, size: float = 0.03) -> tuple[ReferenceLibrary, np.ndarray, np.ndarray, np.random.Generator]:
         standards = simulated_standards(seed, INSTRUMENT, LEVELS)
         library = calibrate(standards.spectra, standards.concentrations, list(standards.names), "mg/L")
-        # A 3 % error on a flank of the first dye (e.g. a standard weighed from a damp lot).
-        error = band_spectrum(GRID, [Band(470.0, 12.0, 0.03)])
+        # An error of `size` of the peak on a flank of the first dye (e.g. a standard weighed from a damp lot).
+        error = band_spectrum(GRID, [Band(470.0, 12.0, size)])
         wrong = dataclasses.replace(library, absorptivity=standards.truth + np.vstack([error, np.zeros(GRID.size)]))
         rng = np.random.default_rng(seed + 1)
         return wrong, standards.truth, rng.uniform(0.08, 0.96, (n_scans, 2)), rng
@@ -70,6 +70,10 @@ def test_a_wrong_library_stops_flagging_clean_scans_and_nothing_else_changes(set
     # residual): its largest value is within a third of the deliberate error's peak.
     assert record["largest_bias"][0] == pytest.approx(0.03, rel=0.35)
     assert plain.settings["library_error"] is None
+    # The first dye's error is named as beyond the calibration's uncertainty, the second dye's is not.
+    first, second = record["components"]
+    assert first["largest_in_standard_errors"] > 10 > second["largest_in_standard_errors"]
+    assert "for dye-0 it reaches" in record["message"] and "dye-1" not in record["message"]
     # Only the screen sees the correction.
     for name in ("concentration", "std_uncertainty", "expanded_uncertainty", "fitted", "residuals", "rms_residual", "residual_p_value"):
         np.testing.assert_array_equal(getattr(learned, name), getattr(plain, name), err_msg=name)
@@ -124,3 +128,12 @@ def test_too_small_a_batch_is_screened_as_before_and_says_why(setting: Callable)
     record = learned.settings["library_error"]
     assert not record["applied"] and "at least 30 needed" in record["message"]
     assert "Library error from this batch: library bias not estimated" in learned.report()
+
+
+def test_a_library_right_within_its_uncertainty_is_not_named(setting: Callable) -> None:
+    library, truth, samples, rng = setting(11, 300, size=0.0)
+    record = quantify(_scans(truth, samples, rng), library, learn_library_error=True).settings["library_error"]
+    assert record["applied"]
+    # Measured when written: 3.5 standard errors at most, for either dye (a gross error reaches tens).
+    assert all(size["largest_in_standard_errors"] < 10 for size in record["components"])
+    assert "standard error" not in record["message"]
