@@ -78,6 +78,8 @@ from threadpoolctl import ThreadpoolController
 from .errors import AbsolveError
 from .library import NoiseModel
 
+(_gbsv,) = scipy.linalg.get_lapack_funcs(("gbsv",), dtype=np.float64)
+
 __all__ = [
     "Diagnosis",
     "DiagnosisKind",
@@ -102,10 +104,13 @@ _EXCESS_P = 1e-3
 # Scans are processed in blocks so the stacked whitened bases stay small in memory.
 _BLOCK = 256
 # Scans per block of the shared-pattern path: its per-scan arrays are a few times n_wl x 32
-# (about 25 MB for 512 scans of 400 points); larger blocks are no faster.
-_GROUP_BLOCK = 512
+# (about 6 MB for 128 scans of 400 points). Measured at 400 points: 128 a quarter faster than 512
+# (whose arrays no longer stay in the processor's cache), 64 slower (more steps of Python per scan).
+_GROUP_BLOCK = 128
 # Flagged scans per block of subspaces for the diagnosis (each scan's whitened bases take n_wl x 50 values).
 _DIAGNOSIS_BLOCK = 64
+# Largest table of null-draw z-scores made at once in the diagnosis (values): about 2 MB.
+_NULL_TABLE = 300_000
 # Singular values below this fraction of a matrix's Frobenius norm count as zero.
 _RANK_TOL = 1e-9
 # Gram-matrix eigenvalues (squared singular values) below this fraction of the squared norm count as
@@ -666,12 +671,15 @@ def _whiten(
     previous: NDArray[np.intp],
 ) -> NDArray[np.float64]:
     """Prais-Winsten whitening of (n, n_wl) or (n, n_wl, q) values with point standard deviations ``sd``; 0 at unusable points."""
+    scans = np.arange(data.shape[0])[:, None]
     if data.ndim == 3:
-        sd, rho, mask, previous = sd[..., None], rho[..., None], mask[..., None], previous[..., None]
+        sd, rho, mask = sd[..., None], rho[..., None], mask[..., None]
     z = np.where(mask, data, 0.0)
     z /= sd
-    # In place: temporaries of a block's size cost several times the arithmetic (fresh pages).
-    out = np.take_along_axis(z, np.broadcast_to(previous, z.shape), axis=1)
+    # In place: temporaries of a block's size cost several times the arithmetic (fresh pages). The
+    # previous points are gathered by (scan, point) pairs, whole rows of q at a time: an index array
+    # of the data's full size (take_along_axis) costs more than the arithmetic.
+    out = z[scans, previous]
     out *= rho
     np.subtract(z, out, out=out)
     out /= np.sqrt(1.0 - rho**2)
@@ -686,12 +694,17 @@ def _unwhiten(
     rows = np.flatnonzero(mask)
     s, r, w = sd[rows], rho[rows], whitened[rows]
     root = np.sqrt(1.0 - r**2)
-    # The whitening matrix is lower bidiagonal over the usable points.
-    banded = np.zeros((2, rows.size))
-    banded[0] = 1.0 / (s * root)
-    banded[1, :-1] = -r[1:] / (s[:-1] * root[1:])
+    # The whitening matrix is lower bidiagonal over the usable points; in LAPACK's band storage the first
+    # row is room for the fill-in of pivoting. Solved by LAPACK directly, as scipy.linalg.solve_banded
+    # does: its checks and wrapping cost some 50 times the solve of a few hundred points.
+    banded = np.zeros((3, rows.size))
+    banded[1] = 1.0 / (s * root)
+    banded[2, :-1] = -r[1:] / (s[:-1] * root[1:])
+    _, _, solution, info = _gbsv(1, 0, banded, w, overwrite_ab=True)
+    if info != 0:
+        raise np.linalg.LinAlgError("singular whitening matrix")
     out = np.full(sd.shape, np.nan)
-    out[rows] = scipy.linalg.solve_banded((1, 0), banded, w)
+    out[rows] = solution
     return out
 
 
@@ -744,9 +757,8 @@ class _Subspaces:
     sd: NDArray[np.float64]
     noise: NoiseModel
     design_basis: NDArray[np.float64]  # (n, n_wl, p) orthonormal, zero columns beyond the rank
-    guard_basis: NDArray[np.float64]  # (n, n_wl, 2p) orthonormal: the design and its smooth part
     design_rank: NDArray[np.int64]
-    white_smooth: NDArray[np.float64]  # (n, n_wl, k) whitened cosine basis
+    projected_smooth: NDArray[np.float64]  # (n, n_wl, k) whitened cosine basis projected off the design and its smooth part
     smooth_gram: NDArray[np.float64]  # (n, k, k) Gram matrix of the whitened cosine basis projected off the guard
     smooth_vectors: NDArray[np.float64]  # (n, k, k) Gram eigenvectors scaled by 1/sqrt(eigenvalue), 0 if dropped
     smooth_rank: NDArray[np.int64]
@@ -763,18 +775,21 @@ class _Subspaces:
 
     def smooth_orthonormal(self) -> NDArray[np.float64]:
         """Orthonormal bases (n, n_wl, k; zero columns beyond the rank) of the scans' smooth subspaces."""
-        overlap = self.guard_basis.transpose(0, 2, 1) @ self.white_smooth
-        return (self.white_smooth - self.guard_basis @ overlap) @ self.smooth_vectors
+        return self.projected_smooth @ self.smooth_vectors
 
 
 def _smooth_projection(design: NDArray[np.float64], basis: NDArray[np.float64], mask: NDArray[np.bool_]) -> NDArray[np.float64]:
-    """Least-squares projection of every design column onto the smooth basis over each scan's usable points."""
-    # Matrix products: a three-operand einsum does not use BLAS and is many times slower.
-    weighted = basis.T * mask[:, None, :]
-    gram = weighted @ basis
-    rhs = weighted @ design
-    coefficients = np.linalg.pinv(gram, hermitian=True) @ rhs
-    return basis @ coefficients
+    """Least-squares projection of every design column onto the smooth basis over each scan's usable points.
+
+    The basis's Gram matrix and its pseudo-inverse depend on the usable points only: made once per pattern.
+    """
+    projection = np.empty(design.shape)
+    for points, rows in _point_patterns(mask):
+        # Matrix products: a three-operand einsum does not use BLAS and is many times slower.
+        weighted = basis.T * points
+        inverse = np.linalg.pinv(weighted @ basis, hermitian=True)
+        projection[rows] = basis @ (inverse @ (weighted @ design[rows]))
+    return projection
 
 
 def _subspaces(
@@ -813,7 +828,7 @@ def _subspaces(
     projected_smooth = white_smooth - guard_basis @ overlap
     coords = np.einsum("nkj,nk->nj", vectors, np.einsum("nwk,nw->nk", projected_smooth, off_design))
     return _Subspaces(
-        mask, rho, previous, linked, sd, noise, design_basis, guard_basis, design_rank, white_smooth, gram, vectors, keep.sum(axis=1),
+        mask, rho, previous, linked, sd, noise, design_basis, design_rank, projected_smooth, gram, vectors, keep.sum(axis=1),
         off_design, coords,
     )
 
@@ -1582,7 +1597,10 @@ def estimate_library_bias(
 
 @dataclass(frozen=True)
 class _Family:
-    """Candidate shapes of one kind: ``shapes`` (n_shapes, n_wl), their parameters, and the sign rule."""
+    """Candidate shapes of one kind: ``shapes`` (n_shapes, n_wl), their parameters, and the sign rule.
+
+    A block of scans holds the shapes made from each scan as one family, ``shapes`` (n_scans, n_shapes, n_wl).
+    """
 
     kind: str
     shapes: NDArray[np.float64]
@@ -1618,11 +1636,15 @@ def _fixed_families_on(grid_bytes: bytes) -> list[_Family]:
 
 
 def _scan_families(grid: NDArray[np.float64], fitted: NDArray[np.float64]) -> list[_Family]:
-    """Shapes built from the scan's fitted absorbance: wavelength shift and high-absorbance shortfall."""
+    """Shapes built from the fitted absorbance: wavelength shift and high-absorbance shortfall.
+
+    ``fitted`` is one scan's, shape (n_wl,), giving shapes (n_shapes, n_wl), or a
+    block's, (n_scans, n_wl), giving shapes (n_scans, n_shapes, n_wl).
+    """
     level = np.clip(fitted, 0.0, None)
     # A shift of +d nm (features at longer wavelengths than the library) turns A(x) into A(x - d) ~ A - d A'.
-    shift = -np.gradient(fitted, grid)[None, :]
-    shortfall = np.vstack([-(level**2), -(10.0**level - 1.0) / np.log(10.0)])
+    shift = -np.gradient(fitted, grid, axis=-1)[..., None, :]
+    shortfall = np.stack([-(level**2), -(10.0**level - 1.0) / np.log(10.0)], axis=-2)
     return [
         _Family("wavelength-shift", shift, {}, False),
         _Family("nonlinearity", shortfall, {"shape": np.array(["quadratic", "stray-light"])}, True),
@@ -1641,10 +1663,18 @@ def _whiten_adjoint(
     """
     root = np.sqrt(1.0 - rho**2)
     out = np.where(mask[..., None], g / (sd * root)[..., None], 0.0)
+    scans = np.arange(g.shape[0])[:, None]
+    # Row j of W is 1 / (sd_j root_j) at j and -rho_j / (root_j sd_b) at the usable point b before it,
+    # so point b also takes a share of g at the point linked back to it, its successor (at most one).
+    # Gathered by (scan, point) pairs, whole rows of k at a time: scattering into out costs more.
     scan, j = np.nonzero(linked)
-    before = previous[scan, j]
-    # Each point is the previous usable point of at most one other, so the indices do not repeat.
-    out[scan, before] -= (rho[scan, j] / (root[scan, j] * sd[scan, before]))[:, None] * g[scan, j]
+    successor = np.zeros(previous.shape, dtype=np.intp)
+    successor[scan, previous[scan, j]] = j
+    followed = np.zeros(previous.shape, dtype=bool)
+    followed[scan, previous[scan, j]] = True
+    weight = rho / (root * sd[scans, previous])
+    share = weight[scans, successor][..., None] * g[scans, successor]
+    np.subtract(out, share, out=out, where=followed[..., None])
     return out
 
 
@@ -1652,9 +1682,10 @@ def _half_window(grid: NDArray[np.float64], profile: NDArray[np.float64]) -> tup
     """Peak position, signed peak value and the contiguous half-maximum window around it."""
     size = np.abs(np.nan_to_num(profile))
     peak = int(np.argmax(size))
-    below = np.flatnonzero(size < 0.5 * size[peak])
-    lo = below[below < peak].max() + 1 if np.any(below < peak) else 0
-    hi = below[below > peak].min() - 1 if np.any(below > peak) else grid.size - 1
+    below = size < 0.5 * size[peak]
+    left, right = np.flatnonzero(below[:peak]), np.flatnonzero(below[peak + 1 :])
+    lo = int(left[-1]) + 1 if left.size else 0
+    hi = peak + int(right[0]) if right.size else grid.size - 1
     return float(grid[peak]), float(profile[peak]), float(grid[lo]), float(grid[hi])
 
 
@@ -1683,35 +1714,53 @@ class _Match:
     detail: dict[str, float | str]
 
 
-def _match(family: _Family, tau: NDArray[np.float64], coords: NDArray[np.float64], noise_var: float,
-           null_draws: NDArray[np.float64]) -> _Match:
-    """Best shape of a family in the smooth unexplained subspace (least squares, one amplitude).
+def _match(
+    family: _Family, tau: NDArray[np.float64], coords: NDArray[np.float64], noise_var: NDArray[np.float64],
+    null_draws: NDArray[np.float64],
+) -> list[_Match]:
+    """Best shape of a family in each scan's smooth unexplained subspace (least squares, one amplitude).
 
-    ``tau`` (k, n_shapes) holds the coordinates of the whitened shapes, one
-    column each, in the orthonormal basis that ``coords`` (k,) and
-    ``null_draws`` (n_draws, k) are given in.
+    ``tau`` (n_scans, k, n_shapes) holds the coordinates of the whitened shapes,
+    one column each, in each scan's orthonormal basis, that ``coords``
+    (n_scans, k) and ``null_draws`` (n_scans, n_draws, k) are given in;
+    ``noise_var`` (n_scans,) is each scan's noise variance. ``family.shapes``
+    is (n_shapes, n_wl), or (n_scans, n_shapes, n_wl) for shapes made from each scan.
+    Every scan's numbers are computed as for that scan alone; the block only
+    spares the per-scan calls.
     """
-    norm2 = np.einsum("ks,ks->s", tau, tau)
-    valid = norm2 > _RANK_TOL * max(float(norm2.max()), np.finfo(float).tiny)
+    n_scans, n_draws = null_draws.shape[:2]
+    norm2 = np.einsum("nks,nks->ns", tau, tau)
+    valid = norm2 > _RANK_TOL * np.maximum(norm2.max(axis=1), np.finfo(float).tiny)[:, None]
     scale = np.where(valid, 1.0 / np.sqrt(np.where(valid, norm2, 1.0)), 0.0)
-    z = (coords @ tau) * scale  # signed amplitude z-score of each shape (in units of the noise sd)
+    z = (coords[:, None, :] @ tau)[:, 0] * scale  # signed amplitude z-score of each shape (in units of the noise sd)
     # The largest squared z-score of each null draw is the square of its largest z (clipped at 0 for
     # one-signed families) or of its smallest: no need to square the whole draws x shapes table.
-    z_null = null_draws @ (tau * scale)
-    top = np.maximum(z_null.max(axis=1), 0.0)
-    null_best = top**2 if family.positive else np.maximum(top, -z_null.min(axis=1)) ** 2
+    # A few scans' tables at a time, each a few MB at most.
+    null_best = np.empty((n_scans, n_draws))
+    step = max(1, _NULL_TABLE // (n_draws * tau.shape[2]))
+    for start in range(0, n_scans, step):
+        part = slice(start, start + step)
+        z_null = null_draws[part] @ (tau[part] * scale[part, None, :])
+        top = np.maximum(z_null.max(axis=2), 0.0)
+        null_best[part] = top**2 if family.positive else np.maximum(top, -z_null.min(axis=2)) ** 2
+    null_explained = np.mean(null_best, axis=1)
     if family.positive:
         z = np.maximum(z, 0.0)
-    best = int(np.argmax(z**2))
-    amplitude = float(z[best] * scale[best]) if valid[best] else 0.0
-    detail = {name: (str(v[best]) if v.dtype.kind in "US" else float(v[best])) for name, v in family.parameters.items()}
-    se = float(np.sqrt(noise_var) * scale[best])
-    if family.kind == "wavelength-shift":
-        detail.update(shift_nm=amplitude, shift_se_nm=se)
-    return _Match(
-        family.kind, float(z[best] ** 2), float(np.mean(null_best)), amplitude, se,
-        family.shapes[best], detail,
-    )
+    rows = np.arange(n_scans)
+    best = np.argmax(z**2, axis=1)
+    z_best, scale_best = z[rows, best], scale[rows, best]
+    amplitude = np.where(valid[rows, best], z_best * scale_best, 0.0)
+    se = np.sqrt(noise_var) * scale_best
+    matches = []
+    for i, b in enumerate(best.tolist()):
+        detail = {name: (str(v[b]) if v.dtype.kind in "US" else float(v[b])) for name, v in family.parameters.items()}
+        if family.kind == "wavelength-shift":
+            detail.update(shift_nm=float(amplitude[i]), shift_se_nm=float(se[i]))
+        shape = family.shapes[b] if family.shapes.ndim == 2 else family.shapes[i, b]
+        matches.append(
+            _Match(family.kind, float(z_best[i] ** 2), float(null_explained[i]), float(amplitude[i]), float(se[i]), shape, detail)
+        )
+    return matches
 
 
 @functools.lru_cache(maxsize=8)
@@ -1732,6 +1781,7 @@ def _diagnose_block(
     (:func:`_whiten_adjoint`); those of the fixed shapes come from one matrix
     product for the whole block, and the null draws' from another: per scan the
     products are too narrow (a few dozen columns) for BLAS to run near its speed.
+    Each family is matched for the whole block at once (:func:`_match`).
     """
     bases = sub.smooth_orthonormal()
     adjoints = _whiten_adjoint(bases, sub.sd, sub.rho, sub.previous, sub.linked, sub.mask)
@@ -1741,43 +1791,53 @@ def _diagnose_block(
     edges = np.cumsum([0] + [family.shapes.shape[0] for family in fixed])
     null_points = _null_points(n_wl)
     null_basis = (null_points @ bases.transpose(1, 0, 2).reshape(n_wl, n_scans * k)).reshape(-1, n_scans, k)
-    scan_families = [
-        _scan_families(grid, np.interp(grid, grid[mask], row[mask])) for row, mask in zip(fitted, sub.mask, strict=True)
-    ]
-    scan_shapes = np.stack([np.vstack([family.shapes for family in families]) for families in scan_families])
+    filled = np.array([np.interp(grid, grid[mask], row[mask]) for row, mask in zip(fitted, sub.mask, strict=True)])
+    scan_families = _scan_families(grid, filled)
+    scan_shapes = np.concatenate([family.shapes for family in scan_families], axis=1)
     scan_tau = adjoints.transpose(0, 2, 1) @ scan_shapes.transpose(0, 2, 1)
-    scan_edges = np.cumsum([0] + [family.shapes.shape[0] for family in scan_families[0]])
-    diagnoses = []
-    for i in range(n_scans):
-        taus = [fixed_tau[i, :, a:b] for a, b in zip(edges[:-1], edges[1:])]
-        taus += [scan_tau[i, :, a:b] for a, b in zip(scan_edges[:-1], scan_edges[1:])]
-        diagnoses.append(_diagnose(grid, sub.one(i), bases[i], fixed + scan_families[i], taus, null_basis[:, i], bool(smooth_found[i])))
-    return diagnoses
-
-
-def _diagnose(
-    grid: NDArray[np.float64], sub: _Subspaces, basis: NDArray[np.float64], families: list[_Family],
-    taus: list[NDArray[np.float64]], null_basis: NDArray[np.float64], smooth_found: bool,
-) -> Diagnosis:
-    """Match the smooth unexplained residual of one scan against the shape families.
-
-    ``basis`` (n_wl, k) is the scan's smooth orthonormal basis, ``taus`` the
-    coordinates in it of each family's shapes (k, n_shapes) and ``null_basis``
-    (n_draws, k) those of the fixed white-noise draws of :func:`_null_points`.
-    """
-    mask = sub.mask[0]
-    coords = sub.coords[0]
-    u = sub.residual[0]
-    smooth_energy = float(coords @ coords)
-    rough_dof = int(mask.sum() - sub.design_rank[0] - sub.smooth_rank[0])
-    # Residual noise variance in whitened units, measured on the rough part so a noise-model scale error cancels.
-    noise_var = max(float(u @ u) - smooth_energy, 0.0) / max(rough_dof, 1)
-    smooth_residual = _unwhiten(basis @ coords, sub.sd[0], sub.rho[0], mask)
+    scan_edges = np.cumsum([0] + [family.shapes.shape[1] for family in scan_families])
+    singles = [sub.one(i) for i in range(n_scans)]
+    smooth_noise = [_smooth_and_noise(single) for single in singles]
+    noise_var = np.array([variance for _, variance in smooth_noise])
     # Fixed pseudo-random draws keep the result reproducible; they only set the look-elsewhere penalty.
     # Drawn per point and projected, so that they do not depend on how the smooth basis happens to be
     # rotated (which varies with the other scans it was made with).
-    null_draws = null_basis * np.sqrt(noise_var)
-    matches = [_match(f, tau, coords, noise_var, null_draws) for f, tau in zip(families, taus, strict=True)]
+    null_draws = null_basis.transpose(1, 0, 2) * np.sqrt(noise_var)[:, None, None]
+    taus = [fixed_tau[:, :, a:b] for a, b in zip(edges[:-1], edges[1:])]
+    taus += [scan_tau[:, :, a:b] for a, b in zip(scan_edges[:-1], scan_edges[1:])]
+    matches = [
+        _match(family, tau, sub.coords, noise_var, null_draws)
+        for family, tau in zip(fixed + scan_families, taus, strict=True)
+    ]
+    return [
+        _diagnose(grid, singles[i], bases[i], [found[i] for found in matches], *smooth_noise[i], bool(smooth_found[i]))
+        for i in range(n_scans)
+    ]
+
+
+def _smooth_and_noise(sub: _Subspaces) -> tuple[float, float]:
+    """Smooth energy of one scan's whitened residual, and its noise variance measured on the rough part.
+
+    Measured on the rough part, a noise-model scale error cancels.
+    """
+    u, coords = sub.residual[0], sub.coords[0]
+    smooth_energy = float(coords @ coords)
+    rough_dof = int(sub.mask[0].sum() - sub.design_rank[0] - sub.smooth_rank[0])
+    return smooth_energy, max(float(u @ u) - smooth_energy, 0.0) / max(rough_dof, 1)
+
+
+def _diagnose(
+    grid: NDArray[np.float64], sub: _Subspaces, basis: NDArray[np.float64], matches: list[_Match],
+    smooth_energy: float, noise_var: float, smooth_found: bool,
+) -> Diagnosis:
+    """Name the shape family that best matches the smooth unexplained residual of one scan.
+
+    ``basis`` (n_wl, k) is the scan's smooth orthonormal basis, ``matches`` the
+    best shape of each family (:func:`_match`), ``smooth_energy`` and
+    ``noise_var`` as :func:`_smooth_and_noise` gives them.
+    """
+    mask = sub.mask[0]
+    smooth_residual = _unwhiten(basis @ sub.coords[0], sub.sd[0], sub.rho[0], mask)
     # Penalise each family by what its best shape explains of pure noise, so flexible families do not win on noise.
     ranked = sorted(matches, key=lambda m: m.explained - m.null_explained, reverse=True)
     best, runner = ranked[0], ranked[1]
@@ -1786,10 +1846,10 @@ def _diagnose(
     z = best.amplitude / best.amplitude_se if best.amplitude_se > 0 else 0.0
     margin = (best.explained - best.null_explained) - (runner.explained - runner.null_explained)
     evidence = margin / noise_var if noise_var > 0 else float("inf")
-    _, residual_peak, _, _ = _half_window(grid, smooth_residual)
+    peak_nm, residual_peak, lo, hi = _half_window(grid, smooth_residual)
 
     if not smooth_found or share < 0.5:
-        peak_nm, value, lo, hi = _half_window(grid, smooth_residual)
+        value = residual_peak
         what = (
             "The residual is larger than the noise model allows but has no smooth shape: "
             "a spike, a narrow feature, or a noisier scan than the instrument's usual"
