@@ -46,7 +46,8 @@ from .errors import AbsolveError
 from .library import NoiseModel, ReferenceLibrary
 from .photometry import correct_stray_light
 from .noise import ar1_coefficients, correlated_squared_norms, correlated_weighted_norms, effective_points, whiten
-from .screening import LibraryBias, Screening, _point_patterns as point_patterns, estimate_library_bias, screen_residuals
+from .screening import LibraryBias, Screening, estimate_library_bias, screen_residuals
+from .screening._subspaces import _point_patterns as point_patterns
 from .solver import MAX_CONDITION, solve_nonnegative
 from .spectra import Spectra
 

@@ -16,13 +16,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from absolve import screening
 from absolve.errors import AbsolveError
 from absolve.io import tables
 from absolve.io.results import STREAMED_FILES, fit_csv, results_csv, results_json, scan_json_lines, spectra_csv, write_results_in_chunks
 from absolve.library import NoiseModel, library_from_absorptivities
 from absolve.noise import ar1_coefficients, correlated_squared_norms
 from absolve.quantify import quantify, quantify_chunks
+from absolve.screening import _bulk
 from absolve.simulate import Instrument, measure, random_absorptivities
 from absolve.spectra import Spectra
 
@@ -42,7 +42,7 @@ def _batch(seed: int, n: int = 90) -> tuple[Spectra, object]:
 
 
 def _general_path_only(monkeypatch: pytest.MonkeyPatch) -> None:
-    monkeypatch.setattr(screening._PointGeometry, "build", classmethod(lambda cls, *args: None))
+    monkeypatch.setattr(_bulk._PointGeometry, "build", classmethod(lambda cls, *args: None))
 
 
 @pytest.mark.parametrize(("baseline", "length"), [("offset", 3.0), ("linear", 0.0), ("none", 12.0)])

@@ -16,15 +16,9 @@ import numpy as np
 import scipy.optimize
 
 from absolve.library import NoiseModel
-from absolve.screening import (
-    _default_terms,
-    _fixed_families,
-    _scan_families,
-    _subspaces,
-    prewhiten,
-    screen_residuals,
-    smooth_basis,
-)
+from absolve.screening import prewhiten, screen_residuals, smooth_basis
+from absolve.screening._diagnosis import _fixed_families, _scan_families
+from absolve.screening._subspaces import _default_terms, _subspaces
 from absolve.simulate import Instrument, measure, random_absorptivities
 
 GRID = np.arange(400.0, 701.0)

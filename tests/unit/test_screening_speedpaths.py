@@ -17,17 +17,15 @@ import pytest
 import scipy.linalg
 
 from absolve.library import NoiseModel
-from absolve.screening import (
-    _NULL_TABLE,
+from absolve.screening import smooth_basis
+from absolve.screening._diagnosis import _NULL_TABLE, _Family, _match
+from absolve.screening._subspaces import _smooth_projection
+from absolve.screening._whitening import (
     _ar_links,
-    _Family,
-    _match,
     _noise_sd,
-    _smooth_projection,
     _unwhiten,
     _whiten,
     _whiten_adjoint,
-    smooth_basis,
 )
 
 GRID = np.arange(400.0, 461.0)
