@@ -290,10 +290,14 @@ def _diagnose(
         "nonlinearity": f"The scan falls short of the library where absorbance is highest (up to {abs(value):.2g} "
         f"absorbance near {peak_nm:.0f} nm), as stray light or concentrations beyond the linear range do",
     }[best.kind]
-    message = (
-        f"{lead_in}; this shape explains {share:.0%} of the unexplained smooth residual "
-        f"(next: {_FAMILY_WORDS[runner.kind]}, {runner_share:.0%}) — {sureness[confidence]}."
+    # Families are ranked by what they explain beyond what their best shape explains of pure noise, so a
+    # more flexible runner-up can explain a larger share and still rank second: say so rather than leave it odd.
+    runner_text = (
+        f"next: {_FAMILY_WORDS[runner.kind]}, {runner_share:.0%}" if runner_share < share else
+        f"{_FAMILY_WORDS[runner.kind]} explains {runner_share:.0%}, but with more shapes to choose from it also fits more noise"
     )
+    message = f"{lead_in}; this shape explains {share:.0%} of the unexplained smooth residual ({runner_text}) — {sureness[confidence]}."
+
     return Diagnosis(
         kind=best.kind,  # type: ignore[arg-type]
         window_nm=(lo, hi), peak_nm=peak_nm, size_absorbance=value, residual_absorbance=residual_peak,
