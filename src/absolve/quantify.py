@@ -65,7 +65,8 @@ _CHUNK = 1024  # scans per block of per-point work, bounding memory (the covaria
 _SCREEN_BLOCK = 1024  # scans per call of the interferent screen (its working arrays are some 20 times the block's values)
 _MIN_SCREEN_POINTS = 10  # fewer wavelengths leave no room for a residual test
 # Scans (spread evenly over the batch) from which the library's fixed error is learned: at 4096 the
-# estimate's own noise is a fraction of a percent of a scan's, and its working arrays stay near 100 MB.
+# estimate's own noise is a fraction of a percent of a scan's, and learning added about 50 MB to the
+# peak of a 20,000 x 400 run (measured).
 _LIBRARY_ERROR_SCANS = 4096
 # A learned library error larger than this many of the calibration's standard errors at its worst
 # wavelength is reported as beyond the calibration. Measured on 16 simulated libraries of two dyes
@@ -523,8 +524,12 @@ class _Job:
         self._find_used_points()
         self.pool = pooled if pooled is not None or library.noise is not None else _Pool()
         self._fit(collect=pooled is None and library.noise is None)
-        self.learn_library_error = learn_library_error
         self.library_error = self._learn_library_error() if learn_library_error else None
+        # What settings["library_error"] says: None when not asked for, made once for every chunk.
+        self.library_error_record = None if not learn_library_error else (
+            self.library_error.record() if self.library_error is not None
+            else {"applied": False, "message": "library error not learned: too few wavelengths to screen"}
+        )
 
     def corrected(self, values: NDArray[np.float64]) -> NDArray[np.float64]:
         """Measured absorbance with the library's stray-light correction (the values that are fitted)."""
@@ -693,7 +698,7 @@ class _Job:
                 "dilution_tolerance": tol_d,
                 "alpha": alpha,
                 "noise_model": "calibration" if library.noise is not None else "scan residuals",
-                "library_error": self.library_error_summary(),
+                "library_error": self.library_error_record,
             },
         )
 
@@ -845,21 +850,6 @@ class _Job:
         correction[learned.rows[inside] - start] = learned.sample_correction[inside]
         return correction
 
-    def library_error_summary(self) -> dict[str, Any] | None:
-        """JSON-safe record of the learned library error (None when it was not asked for)."""
-        learned = self.library_error
-        if learned is None:
-            return None if not self.learn_library_error else {"applied": False, "message": "library error not learned: too few wavelengths to screen"}
-        record = {**learned.bias.summary(), "scans_in_estimate": int(learned.rows.size - learned.n_flagged), "scans_flagged_first": learned.n_flagged}
-        beyond = [size for size in learned.sizes if (size["largest_in_standard_errors"] or 0.0) > _BEYOND_CALIBRATION]
-        for size in beyond:
-            record["message"] += (
-                f"; for {size['component']} it reaches {100 * size['largest_share_of_peak']:.1f} % of the peak absorptivity, "
-                f"{size['largest_in_standard_errors']:.0f} times the calibration's standard error: the library is off for it, "
-                "or an impurity follows it in these scans (check standards from another lot tell which)"
-            )
-        return {**record, "components": learned.sizes}
-
 
 @dataclass(frozen=True)
 class _LearnedError:
@@ -870,6 +860,18 @@ class _LearnedError:
     sample_correction: NDArray[np.float64]  # their leave-one-out corrections, (rows.size, n_wavelengths)
     n_flagged: int  # sampled scans the first pass flagged and the final estimate left out
     sizes: list[dict[str, Any]]  # per component, see _Job._error_sizes
+
+    def record(self) -> dict[str, Any]:
+        """JSON-safe record: the estimate's summary, the sample, each component's size, and the components beyond the calibration named."""
+        record = {**self.bias.summary(), "scans_in_estimate": int(self.rows.size - self.n_flagged), "scans_flagged_first": self.n_flagged}
+        beyond = [size for size in self.sizes if (size["largest_in_standard_errors"] or 0.0) > _BEYOND_CALIBRATION]
+        for size in beyond:
+            record["message"] += (
+                f"; for {size['component']} it reaches {100 * size['largest_share_of_peak']:.1f} % of the peak absorptivity, "
+                f"{size['largest_in_standard_errors']:.0f} times the calibration's standard error: the library is off for it, "
+                "or an impurity follows it in these scans (check standards from another lot tell which)"
+            )
+        return {**record, "components": self.sizes}
 
 
 class _Pool:

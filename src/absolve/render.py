@@ -16,7 +16,7 @@ from .library import ReferenceLibrary
 if TYPE_CHECKING:
     from .quantify import MixtureResult
 
-__all__ = ["ProgressLine", "format_table", "library_report", "mixture_report"]
+__all__ = ["ProgressLine", "format_table", "library_error_lines", "library_report", "mixture_report"]
 
 
 def format_table(headers: Sequence[str], rows: Sequence[Sequence[str]], *, align: str | None = None) -> str:
@@ -116,10 +116,14 @@ def mixture_report(result: MixtureResult, *, max_scans: int = 200) -> str:
         lines.append(f"{flag}: {FLAG_TEXT[flag]}")
     if "interferent" in used:
         lines.append(f"Interferent screen: {result.screening.batch_note()}")
-    learned = result.settings.get("library_error")
-    if learned:
-        lines.append(f"Library error from this batch: {learned['message']}.")
+    lines.extend(library_error_lines(result))
     return "\n".join(lines)
+
+
+def library_error_lines(result: MixtureResult) -> list[str]:
+    """The line saying what ``learn_library_error`` did (none when it was not asked for)."""
+    learned = result.settings.get("library_error")
+    return [f"Library error from this batch: {learned['message']}."] if learned else []
 
 
 class ProgressLine:

@@ -14,7 +14,7 @@ import typer
 from ..io.files import check_writable, write_all
 from ..io.library_file import read_library
 from ..io.tables import read_scans
-from ..render import ProgressLine, format_table
+from ..render import ProgressLine, format_table, library_error_lines
 from ..spectra import Spectra
 from ._app import app
 from ._common import BaselineOption, DecimalOption, FitRangeOption, LearnLibraryErrorOption, PathLengthOption, QuantityOption, parse_range
@@ -124,7 +124,5 @@ def _table(result: CheckResult, rows: list[dict]) -> str:
         lines.append(f"{row['scan']}: {row['message']}")
     screening = result.mixture.screening
     lines.append(f"Screen: {screening.method}; false-alarm rate {screening.alpha:g}. {screening.batch_note()}")
-    learned = result.mixture.settings.get("library_error")
-    if learned:
-        lines.append(f"Library error from this batch: {learned['message']}.")
+    lines.extend(library_error_lines(result.mixture))
     return "\n".join(lines)
