@@ -42,6 +42,7 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy import special
 
+from ._blas import single_blas_thread
 from .errors import AbsolveError
 from .library import NoiseModel, ReferenceLibrary
 from .photometry import correct_stray_light
@@ -488,6 +489,7 @@ class _Job:
     residual sums made elsewhere (the other chunks of a Dask array).
     """
 
+    @single_blas_thread
     def __init__(
         self, spectra: Spectra, library: ReferenceLibrary, baseline: str, wavelength_range: tuple[float | None, float | None],
         path_length: float, dilution: float, ceiling: float, tol_b: float, tol_d: float, alpha: float,
@@ -616,6 +618,7 @@ class _Job:
                 length = noise.correlation_length_nm if noise is not None else self.pool.group_length(group, self.grid[group.points])
                 group.phi = ar1_coefficients(self.grid[group.points], length)
 
+    @single_blas_thread
     def result(self, start: int, stop: int) -> MixtureResult:
         """The full result of scans ``start`` to ``stop - 1``."""
         library = self.library

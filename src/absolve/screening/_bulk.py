@@ -7,12 +7,11 @@ Scans sharing a design and their usable points share their geometry before white
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from threadpoolctl import ThreadpoolController
 
+from .._blas import one_blas_thread
 from ..library import NoiseModel
 from ._band_scan import _band_scan_statistic
 from ._subspaces import _GRAM_TOL, _RANK_TOL, _point_patterns, _Subspaces, _subspaces
@@ -75,12 +74,12 @@ def _energies(
     general = np.ones(n_scans, dtype=bool)
     if shared_design:
         # One BLAS thread: on a busy machine a second one mostly waits (measured 2-3x slower with two).
-        with _one_blas_thread():
+        with one_blas_thread():
             _bulk_energies(grid, resid, fit, x[0], mask, basis, noise, extra, templates, sums, general)
     rows = np.flatnonzero(general)
     if rows.size:
         # Stacks of small matrices: BLAS threads only add synchronisation (tens of times slower on a busy machine).
-        with _one_blas_thread():
+        with one_blas_thread():
             for start in range(0, rows.size, _BLOCK):
                 block = rows[start : start + _BLOCK]
                 sub = _subspaces(grid, resid[block], fit[block], x[block], mask[block], basis, noise, None if extra is None else extra[block])
@@ -304,13 +303,3 @@ class _PointGeometry:
         return (
             np.einsum("nt,nt->n", w, w), np.einsum("nk,nk->n", smooth, smooth), np.einsum("nt,nt->n", step, step), largest, length,
         )
-
-
-_CONTROLLER: list[ThreadpoolController] = []
-
-
-def _one_blas_thread() -> Any:
-    """Limit BLAS to one thread (a context manager); the library lookup is made once per process."""
-    if not _CONTROLLER:
-        _CONTROLLER.append(ThreadpoolController())
-    return _CONTROLLER[0].limit(limits=1, user_api="blas")

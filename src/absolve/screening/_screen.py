@@ -6,10 +6,11 @@ import numpy as np
 import scipy.special
 from numpy.typing import ArrayLike
 
+from .._blas import one_blas_thread
 from ..errors import AbsolveError
 from ..library import NoiseModel
 from ._band_scan import _band_scan_p, _band_templates
-from ._bulk import _energies, _one_blas_thread
+from ._bulk import _energies
 from ._checks import (
     _as_float,
     _check_alpha,
@@ -201,7 +202,7 @@ def screen_residuals(
     if diagnose and flagged.any():
         fixed = _fixed_families(grid)
         # One thread limit around the whole loop: setting it looks up the BLAS libraries (milliseconds a time).
-        with _one_blas_thread():
+        with one_blas_thread():
             rows = np.flatnonzero(flagged)
             # The flagged scans' subspaces are made a block at a time; each diagnosis takes its scan's share.
             for start in range(0, rows.size, _DIAGNOSIS_BLOCK):
