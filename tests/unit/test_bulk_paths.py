@@ -11,6 +11,7 @@ import csv
 import dataclasses
 import io
 import json
+import re
 from pathlib import Path
 
 import numpy as np
@@ -154,6 +155,52 @@ def test_scan_json_lines_are_the_json_of_the_summary_records() -> None:
     names = [f'é "{i}"' if i % 9 == 0 else name for i, name in enumerate(spectra.names)]
     result = quantify(Spectra(GRID, values, names), dataclasses.replace(library, noise=None), baseline="linear", dilution=2.0)
     assert result.interferent.any() and any(result.scan_flags)
-    # Reference: the json module encoding the records of MixtureResult.summary().
-    assert scan_json_lines(result) == [json.dumps(record, allow_nan=False) for record in result.summary()["scans"]]
+    # Reference: the json module encoding the records of MixtureResult.summary(). Numbers may be
+    # spelt otherwise (1e-5 as 0.00001): spelt again by the json module, the texts are the same.
+    lines = scan_json_lines(result)
+    assert [_NUMBER.sub(lambda number: json.dumps(json.loads(number.group())), line) for line in lines] == [
+        json.dumps(record, allow_nan=False) for record in result.summary()["scans"]
+    ]
     assert json.loads(results_json(result, {"run": 2}))["scans"] == result.summary()["scans"]
+
+
+# A JSON number: not part of a word such as the escape "\u00e9"; digits standing alone inside a string are spelt again unchanged.
+_NUMBER = re.compile(r"(?<![\w.])-?\d+(?:\.\d+)?(?:[eE][-+]?\d+)?(?![\w.])")
+
+
+def test_results_and_fit_csv_numbers_are_pythons_format() -> None:
+    spectra, library = _batch(47, n=30)
+    result = quantify(spectra, library, baseline="linear")
+    # Reference: the csv module writing each row with format(value, spec), blank where not finite.
+    def spelt(value: float, spec: str = ".6g") -> str:
+        return format(value, spec) if np.isfinite(value) else ""
+
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(["scan", "component", "concentration", "std_uncertainty", "expanded_uncertainty", "coverage_factor", "unit", "upper_limit", "lod", "loq", "flags"])
+    for i, scan in enumerate(result.scan_names):
+        for j, component in enumerate(result.components):
+            numbers = [spelt(getattr(result, name)[i, j]) for name in ("concentration", "std_uncertainty", "expanded_uncertainty")]
+            limits = [spelt(getattr(result, name)[i, j]) for name in ("upper_limit", "lod", "loq")]
+            writer.writerow([scan, component, *numbers, spelt(result.coverage_factor[i, j], ".4g"), result.unit, *limits, ";".join(result.flags[i][j])])
+    assert results_csv(result) == buffer.getvalue()
+    rows = list(csv.DictReader(io.StringIO(fit_csv(result))))
+    assert [row["rms_residual"] for row in rows] == [spelt(v) for v in result.rms_residual.tolist()]
+    for name, values in (("condition_number", result.condition_number), ("noise_scale", result.noise_scale), ("interferent_p_value", result.screening.p_value)):
+        assert [row[name] for row in rows] == [spelt(v, ".4g") for v in values.tolist()], name
+
+
+def test_wide_tables_of_several_chunks_are_their_numbers_side_by_side(tmp_path: Path) -> None:
+    spectra, library = _batch(48, n=30)
+    chunks = list(quantify_chunks(spectra, library, chunk_scans=7))
+    targets = {name: tmp_path / name for name in ("fitted.csv", "residuals.csv")}
+    write_results_in_chunks(iter(chunks), targets, provenance={})
+    for name, which in (("fitted.csv", "fitted"), ("residuals.csv", "residuals")):
+        values = np.vstack([getattr(chunk, which) for chunk in chunks])
+        # Reference: "%.6f" of numpy's np.round(value, 6) per cell, blank where a point was not used, never "-0.000000".
+        expected = [["wavelength_nm", *spectra.names]] + [
+            [f"{wavelength:g}", *("" if np.isnan(v) else "%.6f" % (float(np.round(v, 6)) + 0.0) for v in values[:, j].tolist())]
+            for j, wavelength in enumerate(GRID.tolist())
+        ]
+        assert np.isnan(values).any(), which
+        assert list(csv.reader(io.StringIO(targets[name].read_text(encoding="utf-8")))) == expected, name

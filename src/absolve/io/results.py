@@ -15,20 +15,21 @@ import contextlib
 import csv
 import io
 import json
-import math
 import os
 import tempfile
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from json.encoder import encode_basestring_ascii
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 import numpy as np
+import orjson
 from numpy.typing import NDArray
 
 from ..errors import AbsolveError
 from ..quantify import MixtureResult
 from .files import Content, _umask, check_writable, folders_removed_on_failure, write_all
-from .tables import csv_field, fixed_decimals, wide_table_lines
+from .tables import csv_field, fixed_decimal_rows, wide_table_lines
 
 if TYPE_CHECKING:
     from ..inverse import InversePrediction
@@ -49,8 +50,25 @@ def _number(value: float, spec: str = ".6g") -> str:
 
 
 def _numbers(values: NDArray[Any], spec: str = ".6g") -> list[str]:
-    """``_number`` of every value of an array, in C order."""
-    return [format(value, spec) if math.isfinite(value) else "" for value in np.ravel(values).astype(np.float64).tolist()]
+    """``_number`` of every value of an array, in C order.
+
+    One ``%`` formatting of the whole array: the same C formatter as
+    ``format(value, spec)``, without a Python call per value.
+    """
+    flat = np.ravel(values).astype(np.float64)
+    if flat.size == 0:
+        return []
+    finite = np.isfinite(flat)
+    texts = ((f"%{spec}," * flat.size) % tuple(np.where(finite, flat, 0.0).tolist()))[:-1].split(",")
+    for i in np.flatnonzero(~finite).tolist():
+        texts[i] = ""
+    return texts
+
+
+def _spelt(spell: Callable[[tuple[str, ...]], str], groups: Iterable[tuple[str, ...]]) -> list[str]:
+    """``spell`` of each group of words, computed once per distinct group (most scans share a few flag sets)."""
+    texts: dict[tuple[str, ...], str] = {}
+    return [texts[words] if words in texts else texts.setdefault(words, spell(words)) for words in groups]
 
 
 def _rows(header: Sequence[str], columns: Sequence[Sequence[str]]) -> str:
@@ -68,8 +86,7 @@ def _writer() -> tuple[io.StringIO, Any]:
 def results_csv(result: MixtureResult) -> str:
     """One row per scan and component: concentration, uncertainties, LOD, flags."""
     n_comp = len(result.components)
-    joined: dict[tuple[str, ...], str] = {}
-    flags = [joined.setdefault(words, csv_field(";".join(words))) for scan in result.flags for words in scan]
+    flags = _spelt(lambda words: csv_field(";".join(words)), (words for scan in result.flags for words in scan))
     columns = [
         [name for name in map(csv_field, result.scan_names) for _ in range(n_comp)],
         [csv_field(component) for component in result.components] * result.n_scans,
@@ -101,7 +118,6 @@ def fit_csv(result: MixtureResult, extra: dict[str, list[str]] | None = None) ->
             window[i] = f"{diagnosis.window_nm[0]:g}-{diagnosis.window_nm[1]:g}"
             size[i] = _number(diagnosis.size_absorbance, ".3g")
     excluded = sum(result.excluded.values())
-    joined: dict[tuple[str, ...], str] = {}
     columns = [
         [csv_field(name) for name in result.scan_names],
         _numbers(result.rms_residual),
@@ -115,7 +131,7 @@ def fit_csv(result: MixtureResult, extra: dict[str, list[str]] | None = None) ->
         [str(int(count)) for count in result.used.sum(axis=1).tolist()],
         [str(int(count)) for count in np.asarray(excluded).tolist()],
         *([csv_field(str(value)) for value in values] for values in extra.values()),
-        [joined.setdefault(words, csv_field(";".join(words))) for words in result.scan_flags],
+        _spelt(lambda words: csv_field(";".join(words)), result.scan_flags),
     ]
     header = (
         "scan", "rms_residual", "condition_number", "interferent", "interferent_p_value", "diagnosis", "diagnosis_confidence",
@@ -164,12 +180,16 @@ _TRAILING = ("upper_limit", "lod", "loq", "sensitivity", "selectivity", "varianc
 
 
 def scan_json_lines(result: MixtureResult) -> list[str]:
-    """``json.dumps`` of each scan record of :meth:`MixtureResult.summary`, made without building the records.
+    """The JSON text of each scan record of :meth:`MixtureResult.summary`, made without building the records.
 
-    Numbers are spelt a whole array at a time (``repr``, as the json module
-    does; ``null`` where not finite) and poured into one text template per
-    component and per scan, several times faster than encoding dictionaries
-    for a batch of many thousands of scans.
+    The text is ``json.dumps`` of the record but for the spelling of some
+    numbers: orjson spells a whole array of floats at a time, each as the
+    shortest text that reads back to the same float (the digits ``repr``
+    finds, written ``2.5e-7`` and ``0.00001`` where ``repr`` writes
+    ``2.5e-07`` and ``1e-05``), ``null`` where not finite. Names are escaped
+    as by the json module. The texts are poured into one text template per
+    component and per scan, several times faster than encoding
+    dictionaries for a batch of many thousands of scans.
     """
     n, m = result.n_scans, len(result.components)
     budget = list(result.budget)
@@ -177,13 +197,13 @@ def scan_json_lines(result: MixtureResult) -> list[str]:
         '{"component": %s, ', *(f'"{key}": %s, ' for key in _LEADING), '"budget": {',
         ", ".join(f'{json.dumps(key)}: %s' for key in budget), "}, ", *(f'"{key}": %s, ' for key in _TRAILING), '"flags": %s}',
     ])
-    columns = [[json.dumps(name) for name in result.components] * n]
-    columns += [_json_texts(getattr(result, key)) for key in _LEADING]
-    columns += [_json_texts(result.budget[key]) for key in budget]
-    columns += [_json_texts(getattr(result, key)) for key in _TRAILING]
-    spelt: dict[tuple[str, ...], str] = {}
-    columns.append([spelt.setdefault(words, json.dumps(list(words))) for scan in result.flags for words in scan])
-    components = [component_template % values for values in zip(*columns)]
+    # One row of numbers per scan and component, in the template's order.
+    numbers = np.stack(
+        [getattr(result, key) for key in _LEADING] + [result.budget[key] for key in budget] + [getattr(result, key) for key in _TRAILING], axis=-1
+    ).reshape(n * m, -1)
+    flags = _spelt(lambda words: json.dumps(list(words)), (words for scan in result.flags for words in scan))
+    names = [encode_basestring_ascii(name) for name in result.components] * n
+    components = [component_template % (name, *row.split(", "), words) for name, row, words in zip(names, _json_rows(numbers), flags)]
     excluded = list(result.excluded)
     scan_template = (
         '{"scan": %s, "components": [%s], "baseline": [%s], "rms_residual": %s, "condition_number": %s, "residual_dof": %s, '
@@ -191,29 +211,42 @@ def scan_json_lines(result: MixtureResult) -> list[str]:
         + ", ".join(f'{json.dumps(key)}: %s' for key in excluded)
         + '}, "interferent": %s, "interferent_p_value": %s, "diagnosis": %s, "flags": %s}'
     )
-    baselines = _json_texts(result.baseline)
-    n_base = result.baseline.shape[1]
     diagnoses = ["null" if d is None else json.dumps(d.summary(), allow_nan=False) for d in result.screening.diagnoses]
     scan_columns = [
-        [json.dumps(name) for name in result.scan_names],
+        [encode_basestring_ascii(name) for name in result.scan_names],
         [", ".join(components[i * m : (i + 1) * m]) for i in range(n)],
-        [", ".join(baselines[i * n_base : (i + 1) * n_base]) for i in range(n)],
+        _json_rows(result.baseline),
         _json_texts(result.rms_residual), _json_texts(result.condition_number),
-        [str(int(dof)) for dof in result.residual_dof.tolist()],
+        _integer_texts(result.residual_dof),
         _json_texts(result.noise_scale), _json_texts(result.residual_p_value),
-        [str(int(count)) for count in result.used.sum(axis=1).tolist()],
-        *([str(int(count)) for count in result.excluded[key].tolist()] for key in excluded),
+        _integer_texts(result.used.sum(axis=1)),
+        *(_integer_texts(result.excluded[key]) for key in excluded),
         ["true" if flagged else "false" for flagged in result.interferent.tolist()],
         _json_texts(result.screening.p_value),
         diagnoses,
-        [spelt.setdefault(words, json.dumps(list(words))) for words in result.scan_flags],
+        _spelt(lambda words: json.dumps(list(words)), result.scan_flags),
     ]
     return [scan_template % values for values in zip(*scan_columns)]
 
 
 def _json_texts(values: NDArray[Any]) -> list[str]:
     """JSON text of every value of an array, in C order (``null`` for NaN and infinity)."""
-    return [repr(value) if math.isfinite(value) else "null" for value in np.ravel(values).astype(np.float64).tolist()]
+    flat = np.ascontiguousarray(values, dtype=np.float64).reshape(-1)
+    return orjson.dumps(flat, option=orjson.OPT_SERIALIZE_NUMPY)[1:-1].decode("ascii").split(",") if flat.size else []
+
+
+def _json_rows(values: NDArray[Any]) -> list[str]:
+    """The JSON texts of each row of a 2-D array joined by ``", "`` (as ``json.dumps`` separates list items)."""
+    block = np.ascontiguousarray(values, dtype=np.float64)
+    if block.size == 0:
+        return [""] * block.shape[0]
+    # "[[1.0,2.0],[3.0,4.0]]": no number holds a comma or a bracket, so the rows split at "],[".
+    return orjson.dumps(block, option=orjson.OPT_SERIALIZE_NUMPY)[2:-2].decode("ascii").replace(",", ", ").split("], [")
+
+
+def _integer_texts(values: NDArray[Any]) -> list[str]:
+    """Decimal text of every value of an integer-valued array, in C order."""
+    return list(map(str, np.ravel(values).astype(np.int64).tolist()))
 
 
 #: Files :func:`write_results_in_chunks` can write, by name.
@@ -314,21 +347,28 @@ def _append_chunk(
             values = chunk.fitted if which == "fitted" else chunk.residuals
             if values is None:
                 raise ValueError(f"chunk {index} holds no {which} spectra")
-            with open(part, "w", encoding="utf-8", newline="") as stream:
-                stream.writelines(fixed_decimals(values[:, j], "", "scaled") + "\n" for j in range(values.shape[1]))
+            with open(part, "wb") as stream:
+                # One line per wavelength: the chunk's column block of the table.
+                stream.writelines(fixed_decimal_rows(values.T, "", "scaled"))
             parts[name].append(part)
     if "results.json" in handles:
         handles["results.json"].write((_json_head(chunk) if head else ",\n") + ",\n".join(scan_json_lines(chunk)))
 
 
 def _join_columns(handle: TextIO, first_header: str, names: Sequence[str], wavelengths: NDArray[np.float64], parts: list[Path], stack: contextlib.ExitStack) -> None:
-    """The wide table from column blocks: the header, then per wavelength the row's pieces joined."""
+    """The wide table from column blocks: the header, then per wavelength the row's pieces joined.
+
+    The blocks are ASCII, so they are joined as bytes, without decoding and
+    encoding the whole table.
+    """
     handle.write(",".join(csv_field(name) for name in (first_header, *names)) + "\n")
+    handle.flush()
+    out = handle.buffer
     with contextlib.ExitStack() as inner:
-        blocks = [inner.enter_context(open(part, encoding="utf-8", newline="")) for part in parts]
-        for wavelength in wavelengths:
-            pieces = [block.readline().rstrip("\n") for block in blocks]
-            handle.write(np.format_float_positional(wavelength, trim="-") + "," + ",".join(pieces) + "\n")
+        blocks = [inner.enter_context(open(part, "rb")) for part in parts]
+        for wavelength in wavelengths.tolist():
+            pieces = [block.readline()[:-1] for block in blocks]
+            out.write(np.format_float_positional(wavelength, trim="-").encode("ascii") + b"," + b",".join(pieces) + b"\n")
 
 
 def prediction_results_csv(prediction: InversePrediction) -> str:

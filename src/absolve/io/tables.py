@@ -40,6 +40,7 @@ if TYPE_CHECKING:  # pandas is imported where it is used: reading scans does not
 __all__ = [
     "concentration_matrix",
     "csv_field",
+    "fixed_decimal_rows",
     "fixed_decimals",
     "format_scan_table",
     "read_concentration_table",
@@ -522,8 +523,9 @@ def wide_table_lines(
     Values are written with six decimals, never as "-0.000000"; ``missing``
     stands for NaN. ``rounding="decimal"`` rounds each value's exact binary
     value (as ``"%.6f"``); ``"scaled"`` rounds ``value * 1e6`` to an integer
-    (as ``np.round(value, 6)``). Rows are made one at a time, so a caller can
-    write a large table without holding all of its text.
+    (as ``np.round(value, 6)``). Rows are spelt a small block of wavelengths
+    at a time and handed out one by one, so a caller can write a large table
+    without holding all of its text.
 
     Parameters
     ----------
@@ -535,9 +537,11 @@ def wide_table_lines(
     values : ndarray, shape (n_columns, n_wavelengths)
     """
     yield ",".join(csv_field(name) for name in (first_header, *names)) + "\n"
-    for j, wavelength in enumerate(wavelengths):
+    blocks = fixed_decimal_rows(np.asarray(values).T, missing, rounding)
+    rows = (row for block in blocks for row in block.decode("utf-8").split("\n")[:-1])
+    for wavelength, row in zip(wavelengths.tolist(), rows, strict=True):
         # Shortest text that reads back to the same float: fine grids must not collapse onto repeated wavelengths.
-        yield np.format_float_positional(wavelength, trim="-") + "," + fixed_decimals(values[:, j], missing, rounding) + "\n"
+        yield np.format_float_positional(wavelength, trim="-") + "," + row + "\n"
 
 
 def csv_field(text: str) -> str:
@@ -546,41 +550,85 @@ def csv_field(text: str) -> str:
 
 
 def fixed_decimals(values: NDArray[np.float64], missing: str = "", rounding: str = "decimal") -> str:
-    """Comma-separated six-decimal texts of ``values`` (1-D), ``missing`` for NaN (see :func:`wide_table_lines`).
+    """Comma-separated six-decimal texts of ``values`` (1-D), ``missing`` for NaN (see :func:`wide_table_lines`)."""
+    return b"".join(fixed_decimal_rows(np.reshape(values, (1, -1)), missing, rounding))[:-1].decode("utf-8")
 
-    Each value is split into an integer of millionths and spelt with lookup
-    tables of digit words: numpy work per value instead of Python formatting
-    (0.3 s against 1.8 s for 8 million values).
+
+def fixed_decimal_rows(values: NDArray[np.float64], missing: str = "", rounding: str = "decimal") -> Iterator[bytes]:
+    """Each row of ``values`` as a line of comma-separated six-decimal texts (UTF-8, every line ending in a newline).
+
+    The cells are spelt as by :func:`fixed_decimals` (see :func:`wide_table_lines`
+    for ``missing`` and ``rounding``), a block of rows at a time: each value
+    becomes an integer of millionths whose digit groups index lookup tables
+    of 4-byte words, and the words' zero padding is dropped in one pass.
+    This is numpy work per value and none in Python per value or per row.
+
+    Parameters
+    ----------
+    values : ndarray, shape (n_rows, n_cells)
+    missing : str
+        Text of a NaN or infinite cell.
+    rounding : {"decimal", "scaled"}
+
+    Returns
+    -------
+    iterator of bytes
+        The text of consecutive blocks of whole lines, ``n_rows`` lines in
+        all: a large table is never held whole.
     """
-    finite = np.isfinite(values)
-    scaled = np.rint(np.where(finite, values, 0.0) * 1e6)
-    if np.any(np.abs(scaled) >= 1e9):
-        # Values of 1000 and above are rare enough for Python's own formatting.
-        return ",".join(_six_decimals(v, rounding) if ok else missing for v, ok in zip(values.tolist(), finite.tolist()))
-    millionths = scaled.astype(np.int64)
-    if rounding == "decimal":
-        # Where value * 1e6 lies within rounding error of a half, the scaled product may round the other way.
-        product = np.where(finite, values, 0.0) * 1e6
-        close = np.flatnonzero(np.abs(np.abs(product - np.floor(product)) - 0.5) <= 2.0 * np.spacing(np.abs(product)))
-        for i in close.tolist():
-            millionths[i] = round(Decimal(float(values[i])).scaleb(6).to_integral_value(ROUND_HALF_EVEN))
-    high, low, prefix = _digit_words()
-    magnitude = np.abs(millionths)
-    units, fraction = np.divmod(magnitude, 1_000_000)
-    thousands, rest = np.divmod(fraction, 1000)
-    words = np.empty((values.size, 2), dtype=np.uint64)
-    words[:, 0] = prefix[units + 1000 * (millionths < 0)]
-    words[:, 1] = high[thousands] | low[rest]
-    if not np.all(finite) and missing == "":
-        words[~finite] = (0, _COMMA_WORD)
-    raw = words.view(np.uint8).reshape(-1)
-    text = raw[raw != 0][:-1].tobytes().decode("ascii")
-    if not np.all(finite) and missing != "":
-        cells = text.split(",")
-        for i in np.flatnonzero(~finite).tolist():
-            cells[i] = missing
-        text = ",".join(cells)
-    return text
+    block = np.asarray(values, dtype=np.float64)
+    if block.ndim != 2:
+        raise ValueError(f"values must be 2-D (rows of cells); got {block.ndim} dimensions")
+    if block.shape[1] == 0:
+        return iter([b"\n" * block.shape[0]])
+    # Blocks of rows whose temporary arrays stay cache-sized.
+    step = max(1, _SPELL_CELLS // block.shape[1])
+    return (_spelt_rows(block[start : start + step], missing, rounding) for start in range(0, block.shape[0], step))
+
+
+def _spelt_rows(block: NDArray[np.float64], missing: str, rounding: str) -> bytes:
+    """:func:`fixed_decimal_rows` of a block of rows with at least one cell each."""
+    # Huge values overflow to infinity and infinities give NaN here: both are spelt one by one below.
+    with np.errstate(over="ignore", invalid="ignore"):
+        product = block * 1e6
+        scaled = np.rint(product)
+        if rounding == "decimal":
+            # Where value * 1e6 lies within rounding error of a half, the scaled product may round the other way.
+            close = np.abs(np.abs(product - np.floor(product)) - 0.5) <= 2.0 * np.spacing(np.abs(product))
+            for i in np.flatnonzero(close & (np.abs(product) < 1e9)).tolist():
+                scaled.flat[i] = float(round(Decimal(float(block.flat[i])).scaleb(6).to_integral_value(ROUND_HALF_EVEN)))
+    # The tables spell values below 1000 in size; NaN fails both comparisons.
+    plain = None if scaled.min() > -1e9 and scaled.max() < 1e9 else np.abs(scaled) < 1e9
+    if plain is not None:
+        scaled[~plain] = 0.0
+    negative = scaled < 0
+    millionths = np.abs(scaled).astype(np.uint32)
+    thousandths = millionths // 1000
+    units = thousandths // 1000
+    prefix, high, low = _digit_words()
+    words = np.empty((*block.shape, 3), dtype="<u4")  # little-endian, as the tables spell
+    words[..., 0] = prefix[units + np.uint32(1000) * negative]
+    words[..., 1] = high[thousandths - 1000 * units]
+    words[..., 2] = low[millionths - 1000 * thousandths]
+    if plain is not None:
+        words[~plain] = (0, 0, _COMMA_WORD)
+    words[:, -1, 2] ^= _LINE_END
+    text = words.tobytes().translate(None, b"\0")
+    if plain is None:
+        return text
+    # Cells the tables cannot spell: values of 1000 and above (rare enough for Python's own formatting) and, unless empty, missing ones.
+    spell = ~plain & (np.isfinite(block) | (missing != ""))
+    if not spell.any():
+        return text
+    lines = text.split(b"\n")
+    for row in np.flatnonzero(spell.any(axis=1)).tolist():
+        cells = lines[row].split(b",")
+        for column in np.flatnonzero(spell[row]).tolist():
+            value = float(block[row, column])
+            with np.errstate(over="ignore"):  # np.round of a value above 1e302 is infinite, as numpy has it
+                cells[column] = (_six_decimals(value, rounding) if np.isfinite(value) else missing).encode("utf-8")
+        lines[row] = b",".join(cells)
+    return b"\n".join(lines)
 
 
 def _six_decimals(value: float, rounding: str) -> str:
@@ -589,27 +637,29 @@ def _six_decimals(value: float, rounding: str) -> str:
     return f"{rounded + 0.0:.6f}"
 
 
-# The comma alone, in the last byte of a word (the cell of a missing value when it is written empty).
-_COMMA_WORD = ord(",") << 56
+# Cells spelt at once by fixed_decimal_rows: its temporary arrays stay in the cache (twice as fast as 400 x 2,048 at once).
+_SPELL_CELLS = 1 << 16
+# The comma alone, in the last byte of a word (a cell written empty), and what turns that comma into a line end.
+_COMMA_WORD = np.uint32(ord(",") << 24)
+_LINE_END = np.uint32((ord(",") ^ ord("\n")) << 24)
 
 
 @functools.cache
-def _digit_words() -> tuple[NDArray[np.uint64], NDArray[np.uint64], NDArray[np.uint64]]:
-    """Lookup tables of little-endian 8-byte words.
+def _digit_words() -> tuple[NDArray[np.uint32], NDArray[np.uint32], NDArray[np.uint32]]:
+    """Lookup tables of little-endian 4-byte words.
 
-    ``high[i] | low[j]`` spells ``".iiijjj,"``; ``prefix[u + 1000 * negative]``
-    spells the sign and the integer part ``u`` (0-999) right-aligned, zero
-    bytes before it (zero bytes are dropped when the row is joined).
+    ``prefix[u + 1000 * negative]`` spells the sign and the integer part ``u``
+    (0-999) right-aligned, zero bytes before it (dropped when the text is
+    joined); ``high[i]`` spells ``".iii"`` and ``low[j]`` spells ``"jjj,"``.
     """
-    digits = np.array([list(f"{i:03d}".encode()) for i in range(1000)], dtype=np.uint64)
-    shift = [np.uint64(8 * k) for k in range(8)]
-    high = np.uint64(ord(".")) | (digits[:, 0] << shift[1]) | (digits[:, 1] << shift[2]) | (digits[:, 2] << shift[3])
-    low = (digits[:, 0] << shift[4]) | (digits[:, 1] << shift[5]) | (digits[:, 2] << shift[6]) | (np.uint64(ord(",")) << shift[7])
-    prefix = np.zeros(2000, dtype=np.uint64)
+    digits = np.array([list(f"{i:03d}".encode()) for i in range(1000)], dtype=np.uint32)
+    high = np.uint32(ord(".")) | (digits[:, 0] << 8) | (digits[:, 1] << 16) | (digits[:, 2] << 24)
+    low = digits[:, 0] | (digits[:, 1] << 8) | (digits[:, 2] << 16) | _COMMA_WORD
+    prefix = np.zeros(2000, dtype=np.uint32)
     for index in range(2000):
         spelt = (("-" if index >= 1000 else "") + str(index % 1000)).encode()
-        prefix[index] = sum(byte << (8 * (8 - len(spelt) + k)) for k, byte in enumerate(spelt))
-    return high, low, prefix
+        prefix[index] = sum(byte << (8 * (4 - len(spelt) + k)) for k, byte in enumerate(spelt))
+    return prefix, high.astype(np.uint32), low.astype(np.uint32)
 
 
 _CONCENTRATION_COLUMNS = ("scan", "component", "concentration")
