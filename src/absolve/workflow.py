@@ -172,7 +172,8 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
         for chunk in chunks:
             batch.add(chunk)
             if drawer is not None:
-                drawer.follow(batch)
+                # After the last chunk the worker gets the rest, overviews included, while this process still writes.
+                drawer.follow(batch, complete=batch.n_scans == n_scans)
             progress("fitting", batch.n_scans, n_scans)
             yield chunk
 
@@ -183,6 +184,8 @@ def run_quantify(request: QuantifyRequest, progress: Progress = _silent) -> Quan
         figures = render_figures(
             batch, library, file_format=file_format, progress=lambda done, total: progress("drawing figures", done, total), drawer=drawer
         )
+        if drawer is not None:
+            drawer.close(wait=True)  # every figure is in: the worker's memory is free before the report is built
         progress("writing files", 0, 0)
         files: dict[Path, Content] = {targets[5]: build_report(batch.result, library, record, figures=figures, sections=request.extra_sections, prediction=prediction)}
         figure_files.extend(figure_folder / f"{figure.key}.{file_format}" for figure in figures if figure.file is not None)

@@ -173,6 +173,27 @@ def test_overview_and_residual_sizes_show_every_scan(fitted: tuple[MixtureResult
     np.testing.assert_allclose(flagged, result.rms_residual[result.interferent])
 
 
+def test_overviews_drawn_from_the_batch_numbers_alone_equal_those_drawn_from_the_result(fitted: tuple[MixtureResult, ReferenceLibrary]) -> None:
+    from absolve.report.batch import BatchNumbers, expected_rms_residual
+
+    result, library = fitted
+    expected = expected_rms_residual(result, library)
+    numbers = BatchNumbers.of(result, expected)
+    assert numbers.n_scans == result.n_scans == len(NAMES)
+    with figures._svg_settings():
+        pairs = [
+            (figures.plot_overview(result), figures.plot_overview(numbers)),
+            (figures.plot_residual_sizes(result, library), figures.plot_residual_sizes(numbers)),
+        ]
+        for from_result, from_numbers in pairs:
+            assert figures.figure_svg(from_numbers.figure, "n") == figures.figure_svg(from_result.figure, "n")
+    # The grey marks are the numbers' own expected sizes: no library or spectra needed.
+    np.testing.assert_allclose(_line(pairs[1][1], "expected from noise"), expected)  # type: ignore[arg-type]
+    assert figures.draw_figure("overview", "overview", library, numbers, None)[0].startswith("<svg")
+    with pytest.raises(ValueError, match="cannot draw a 'scan' figure from BatchNumbers"):
+        figures.draw_figure("scan-00001", "scan", library, numbers, None)
+
+
 def test_big_batches_are_drawn_as_an_embedded_image_and_stay_small(fitted: tuple[MixtureResult, ReferenceLibrary]) -> None:
     result, library = fitted
     n = 2000

@@ -8,12 +8,15 @@ its per-scan numbers without the fitted and residual spectra, plus the
 spectra of the scans that are, so far, the ones to draw. Memory therefore
 grows with the per-scan numbers, not with the spectra, and the choice at the
 end is the one :func:`~absolve.report.figures.detail_scans` makes on the
-whole batch.
+whole batch. The batch overview figures need only a few numbers per scan
+(:class:`BatchNumbers`), a few megabytes even at 100,000 scans, so they are
+cheap to hand to another process.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -21,7 +24,7 @@ from numpy.typing import NDArray
 from ..library import ReferenceLibrary
 from ..quantify import MixtureResult, concatenate_results
 
-__all__ = ["DetailScans", "ReportBatch", "detail_positions", "expected_rms_residual", "flag_strength"]
+__all__ = ["BatchNumbers", "DetailScans", "ReportBatch", "detail_positions", "expected_rms_residual", "flag_strength"]
 
 
 def expected_rms_residual(result: MixtureResult, library: ReferenceLibrary) -> NDArray[np.float64] | None:
@@ -58,6 +61,46 @@ class DetailScans:
     def indices(self) -> tuple[int, ...]:
         """Batch index of each scan of :attr:`result`."""
         return self.first + self.flagged
+
+
+@dataclass(frozen=True)
+class BatchNumbers:
+    """The per-scan numbers the batch overview figures draw, and nothing else.
+
+    Attributes
+    ----------
+    scan_names, components : tuple of str
+    unit : str
+        Concentration unit.
+    concentration, expanded_uncertainty : ndarray, shape (n_scans, n_components)
+    rms_residual : ndarray, shape (n_scans,)
+    interferent : ndarray of bool, shape (n_scans,)
+        Flagged by the interferent screen.
+    expected_rms : ndarray, shape (n_scans,), or None
+        :func:`expected_rms_residual` of each scan (None without a noise model).
+    """
+
+    scan_names: tuple[str, ...]
+    components: tuple[str, ...]
+    unit: str
+    concentration: NDArray[np.float64]
+    expanded_uncertainty: NDArray[np.float64]
+    rms_residual: NDArray[np.float64]
+    interferent: NDArray[np.bool_]
+    expected_rms: NDArray[np.float64] | None
+
+    @classmethod
+    def of(cls, result: MixtureResult, expected_rms: NDArray[np.float64] | None) -> BatchNumbers:
+        """The numbers of ``result`` (the arrays are shared, not copied)."""
+        return cls(
+            result.scan_names, result.components, result.unit, result.concentration,
+            result.expanded_uncertainty, result.rms_residual, result.interferent, expected_rms,
+        )
+
+    @property
+    def n_scans(self) -> int:
+        """Number of scans."""
+        return len(self.scan_names)
 
 
 def flag_strength(result: MixtureResult) -> tuple[NDArray[np.bool_], NDArray[np.float64]]:
@@ -144,6 +187,27 @@ class ReportBatch:
         if any(part is None for part in self._expected):
             return None
         return np.concatenate(self._expected)  # type: ignore[arg-type]
+
+    @property
+    def numbers(self) -> BatchNumbers:
+        """What the batch overview figures draw of every scan.
+
+        Gathered from the chunks' arrays without joining their whole results
+        (:attr:`result`), which would hold every per-scan number twice for a while.
+        """
+        parts = self._parts
+        if not parts:
+            raise ValueError("no scans were added")
+        if len(parts) == 1:
+            return BatchNumbers.of(parts[0], self.expected_rms)
+
+        def joined(name: str) -> NDArray[Any]:
+            return np.concatenate([getattr(part, name) for part in parts])
+
+        return BatchNumbers(
+            tuple(name for part in parts for name in part.scan_names), parts[0].components, parts[0].unit,
+            joined("concentration"), joined("expanded_uncertainty"), joined("rms_residual"), joined("interferent"), self.expected_rms,
+        )
 
     @property
     def details(self) -> DetailScans:

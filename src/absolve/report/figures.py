@@ -25,7 +25,7 @@ from typing import TYPE_CHECKING, Literal, Protocol
 import numpy as np
 from numpy.typing import NDArray
 
-from .batch import ReportBatch, detail_positions, expected_rms_residual, flag_strength
+from .batch import BatchNumbers, ReportBatch, detail_positions, expected_rms_residual, flag_strength
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
@@ -319,7 +319,7 @@ def scan_figure(result: MixtureResult, library: ReferenceLibrary, scan: int) -> 
 # --------------------------------------------------------------------------- batches
 
 
-def _scan_axis(ax: Axes, result: MixtureResult) -> NDArray[np.float64]:
+def _scan_axis(ax: Axes, result: MixtureResult | BatchNumbers) -> NDArray[np.float64]:
     """Scan positions 1..n; with few scans their names label the ticks."""
     x = np.arange(1, result.n_scans + 1, dtype=np.float64)
     if result.n_scans <= _NAMED_TICKS_UP_TO:
@@ -339,12 +339,13 @@ def _points(many: bool, size: float) -> dict[str, object]:
     return {"marker": "o", "markersize": size, "linestyle": "none"}
 
 
-def plot_overview(result: MixtureResult, ax: Axes | None = None) -> Axes:
+def plot_overview(result: MixtureResult | BatchNumbers, ax: Axes | None = None) -> Axes:
     """Concentration of every component in every scan, with its expanded-uncertainty bar.
 
     Batches of more than a few hundred scans get a compact dot plot instead:
     the bars would merge into a band, and the points are drawn as one embedded
-    image (the axes and text stay vector).
+    image (the axes and text stay vector). ``result`` may be a whole result or
+    just the numbers drawn (:class:`~absolve.report.batch.BatchNumbers`).
     """
     ax = ax if ax is not None else _new_axes(7.5, 3.4)
     x = _scan_axis(ax, result)
@@ -368,19 +369,27 @@ def plot_overview(result: MixtureResult, ax: Axes | None = None) -> Axes:
 
 
 def plot_residual_sizes(
-    result: MixtureResult, library: ReferenceLibrary | None = None, ax: Axes | None = None, *, expected: NDArray[np.float64] | None = None
+    result: MixtureResult | BatchNumbers,
+    library: ReferenceLibrary | None = None,
+    ax: Axes | None = None,
+    *,
+    expected: NDArray[np.float64] | None = None,
 ) -> Axes:
     """Root-mean-square residual of every scan, with the scans the interferent screen flagged marked.
 
     The rms residual expected from noise alone at each scan's fitted
-    absorbance is drawn too (grey): ``expected`` when given, otherwise
-    computed with the library's noise model when it has one.
+    absorbance is drawn too (grey): ``expected`` when given, else the
+    ``expected_rms`` of :class:`~absolve.report.batch.BatchNumbers`, else
+    computed from a result's fitted spectra with the library's noise model
+    when it has one.
     """
     ax = ax if ax is not None else _new_axes(7.5, 2.8)
     x = _scan_axis(ax, result)
     many = result.n_scans > _RASTER_ABOVE
     rms = result.rms_residual
-    if expected is None and library is not None:
+    if expected is None and isinstance(result, BatchNumbers):
+        expected = result.expected_rms
+    elif expected is None and library is not None:
         expected = expected_rms_residual(result, library)
     if expected is not None:
         grey = {**_points(many, 10), "marker": "s" if many else "_"}
@@ -523,19 +532,18 @@ def render_figures(
         Scan figures carry the scan's index in the batch.
     """
     batch = result if isinstance(result, ReportBatch) else ReportBatch.of(result, library, detail)
-    whole, details = batch.result, batch.details
+    numbers, details = batch.numbers, batch.details
     jobs: list[tuple[str, str, int | None, str]] = [
         ("library", "library", None, "Absorptivity of each component (bands: ±2 standard errors from the calibration) and the band half-width."),
-        ("overview", "overview", None, _overview_caption(whole)),
+        ("overview", "overview", None, _overview_caption(numbers)),
         ("residual-sizes", "residual-sizes", None, "Root-mean-square residual per scan against what noise alone would give; scans flagged by the interferent screen are marked in red-orange."),
     ]
     for local, i in enumerate(details.indices):
-        jobs.append((scan_figure_key(i, whole.scan_names[i]), "scan", local, _scan_caption(details.result, local)))
+        jobs.append((scan_figure_key(i, numbers.scan_names[i]), "scan", local, _scan_caption(details.result, local)))
     rendered = []
     for done, (key, place, scan, caption) in enumerate(jobs, start=1):
-        data = None if place == "library" else whole if scan is None else details.result.take([scan])
-        expected = batch.expected_rms if place == "residual-sizes" else None
-        svg, file = (draw_figure if drawer is None else drawer.draw)(key, place, library, data, expected, file_format)
+        data = None if place == "library" else numbers if scan is None else details.result.take([scan])
+        svg, file = (draw_figure if drawer is None else drawer.draw)(key, place, library, data, file_format)
         rendered.append(RenderedFigure(key, place, None if scan is None else details.indices[scan], caption, svg, file))
         if progress is not None:
             progress(done, len(jobs))
@@ -546,8 +554,7 @@ class FigureDrawer(Protocol):
     """Something that draws a report figure as :func:`draw_figure` does."""
 
     def draw(
-        self, key: str, place: str, library: ReferenceLibrary, data: MixtureResult | None,
-        expected: NDArray[np.float64] | None, file_format: FigureFormat | None,
+        self, key: str, place: str, library: ReferenceLibrary, data: MixtureResult | BatchNumbers | None, file_format: FigureFormat | None
     ) -> tuple[str, bytes | None]: ...
 
 
@@ -555,8 +562,7 @@ def draw_figure(
     key: str,
     place: str,
     library: ReferenceLibrary,
-    data: MixtureResult | None,
-    expected: NDArray[np.float64] | None,
+    data: MixtureResult | BatchNumbers | None,
     file_format: FigureFormat | None,
 ) -> tuple[str, bytes | None]:
     """One figure of the report as inline SVG text, and as a file when a format is asked for.
@@ -568,11 +574,10 @@ def draw_figure(
         are unique on the page and the same whichever process draws it.
     place : {"library", "overview", "residual-sizes", "scan"}
     library : ReferenceLibrary
-    data : MixtureResult or None
-        The whole batch's numbers for the overviews, the one scan (with its
-        spectra) for a scan figure, None for the library figure.
-    expected : ndarray or None
-        Residual size from noise alone, per scan (``"residual-sizes"`` only).
+    data : MixtureResult or BatchNumbers or None
+        The whole batch's numbers for the overviews (:class:`BatchNumbers`, or
+        a result), the one scan (with its spectra) for a scan figure, None for
+        the library figure.
     file_format : {"png", "svg"}, optional
     """
     with _svg_settings():
@@ -583,9 +588,11 @@ def draw_figure(
         elif place == "overview":
             figure = plot_overview(data).figure
         elif place == "residual-sizes":
-            figure = plot_residual_sizes(data, ax=None, expected=expected).figure
-        else:
+            figure = plot_residual_sizes(data, library).figure
+        elif place == "scan" and not isinstance(data, BatchNumbers):
             figure = scan_figure(data, library, 0)
+        else:
+            raise ValueError(f"cannot draw a {place!r} figure from {type(data).__name__}")
         return figure_svg(figure, f"f-{key}"), None if file_format is None else figure_bytes(figure, file_format)
 
 
@@ -598,7 +605,7 @@ def _svg_settings() -> Iterator[None]:
         yield
 
 
-def _overview_caption(result: MixtureResult) -> str:
+def _overview_caption(result: BatchNumbers) -> str:
     if result.n_scans > _RASTER_ABOVE:
         return "Concentration per scan and component (one dot each; the uncertainties are in the results table and results.csv)."
     return "Concentration per scan and component; bars are expanded uncertainties (about 95 %), often smaller than the dots."
