@@ -252,6 +252,54 @@ def test_mutated_files_give_spectra_or_absolve_error(write_file, edits, quantity
     assert not np.any(np.isinf(scans.values))
 
 
+# Cell spellings of one number: plain, exponent, integer, signs and padding; the last ones JSON does not
+# accept, so their tables must take numpy's reader instead and still read the same numbers.
+_SPELLINGS = [
+    lambda x: repr(x), lambda x: f"{x:.6f}", lambda x: f"{x:.17e}", lambda x: f"{x:.3E}", lambda x: f"{x:.25g}",
+    lambda x: f" {x:.4f} ", lambda x: str(int(round(x * 100))),
+]
+_NOT_JSON = [lambda x: f"{x:+.4f}", lambda x: f"{x:.4f}".replace("0.", ".", 1) if 0 <= x < 1 else f"{x:.4f}", lambda x: f"{round(x)}."]
+
+
+@given(
+    values=hnp.arrays(np.float64, st.tuples(st.integers(2, 6), st.integers(1, 5)), elements=st.floats(-3.0, 9.0)),
+    spelling=st.integers(0, len(_SPELLINGS) + len(_NOT_JSON) - 1),
+    delimiter=st.sampled_from([",", "\t", ";"]),
+)
+@settings(suppress_health_check=[HealthCheck.function_scoped_fixture], max_examples=60)
+def test_every_cell_reads_as_the_correctly_rounded_float_of_its_text(write_file, values, spelling: int, delimiter: str) -> None:
+    spell = (_SPELLINGS + _NOT_JSON)[spelling]
+    grid = 400.0 + np.arange(values.shape[0])
+    cells = [[f"{w:g}", *(spell(float(v)) for v in row)] for w, row in zip(grid, values)]
+    header = delimiter.join(["wavelength", *(f"s{j}" for j in range(values.shape[1]))])
+    path = write_file("cells.csv", "\n".join([header, *(delimiter.join(row) for row in cells)]) + "\n")
+    table = read_wide_table(path, what="scan")
+    # Python's float() of a decimal text is the correctly rounded double (IEEE 754 conversion), the
+    # reference whichever reader took the table.
+    expected = np.array([[float(cell) for cell in row[1:]] for row in cells]).T
+    np.testing.assert_array_equal(table.columns, expected)
+
+
+def test_plain_tables_are_read_without_numpy_and_others_with_it(write_file, monkeypatch: pytest.MonkeyPatch) -> None:
+    calls: list[int] = []
+    loadtxt = np.loadtxt
+
+    def counted(*args, **kwargs):  # type: ignore[no-untyped-def]
+        calls.append(1)
+        return loadtxt(*args, **kwargs)
+
+    monkeypatch.setattr(np, "loadtxt", counted)
+    _assert_expected(read_scan_table(write_file("plain.csv", _table())))
+    _assert_expected(read_scan_table(write_file("commented.csv", "# note\n" + _table().replace("\n400", "\n# mid\n400"))))
+    assert calls == []
+    # A cell JSON does not accept, or a word that JSON would read (true), sends the table to numpy's reader.
+    _assert_expected(read_scan_table(write_file("leading-point.csv", _table().replace("0.10", ".10"))))
+    assert len(calls) == 1
+    with pytest.raises(AbsolveError, match="'true' is not a number"):
+        read_scan_table(write_file("word.csv", _table().replace("0.10", "true")))
+    assert len(calls) == 2
+
+
 # ---------------------------------------------------------------- concentration tables
 
 CONCENTRATIONS = (

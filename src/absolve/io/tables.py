@@ -23,12 +23,13 @@ import functools
 import io
 import os
 from decimal import ROUND_HALF_EVEN, Decimal
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import IO, TYPE_CHECKING
 
 import numpy as np
+import orjson
 from numpy.typing import NDArray
 
 from ..errors import AbsolveError
@@ -291,8 +292,9 @@ def _stream_parse(file: Path, decimal: str) -> _Parsed | None:
     """Parse a plain, complete numeric table straight from the file; None sends it the careful way.
 
     The first pass walks the lines in binary (one line in memory at a time)
-    to find comments, blank lines and the header; the second lets numpy's C
-    parser read the data rows from the file handle.
+    to find comments, blank lines and the header; the second reads the data
+    rows from the file handle with orjson (:func:`_json_rows`), or with
+    numpy's C parser when they are not all plain numbers.
     """
     try:
         handle = open(file, "rb")
@@ -331,20 +333,61 @@ def _stream_parse(file: Path, decimal: str) -> _Parsed | None:
             return None
         data_numbers = numbers[1:]
         contiguous = data_numbers[-1] - data_numbers[0] == len(data_numbers) - 1
-        try:
+
+        def data_rows() -> Iterable[bytes]:
             if contiguous and decimal == ".":
                 handle.seek(data_offset)
-                source: object = handle
-            else:
-                source = _data_lines(handle, set(data_numbers), decimal)
-            matrix = np.loadtxt(
-                source, delimiter=delimiter, dtype=np.float64, comments=None, max_rows=len(data_numbers), ndmin=2
-            )
-        except ValueError:
-            return None
+                return handle
+            return _data_lines(handle, set(data_numbers), decimal)
+
+        matrix = _json_rows(data_rows(), len(data_numbers), len(header), delimiter)
+        if matrix is None:
+            try:
+                matrix = np.loadtxt(
+                    data_rows(), delimiter=delimiter, dtype=np.float64, comments=None, max_rows=len(data_numbers), ndmin=2
+                )
+            except ValueError:
+                return None
     if matrix.shape != (len(data_numbers), len(header)) or not np.all(np.isfinite(matrix)):
         return None
     return header, has_header, numbers[0], matrix, data_numbers
+
+
+def _json_rows(lines: Iterable[bytes], n_rows: int, n_columns: int, delimiter: str | None) -> NDArray[np.float64] | None:
+    """The data rows read as JSON arrays of numbers; None unless every row is plain numbers.
+
+    orjson parses a wide row two to three times faster than numpy's C reader,
+    correctly rounded as numpy's (checked in tests/unit/test_tables.py). Only
+    rows of digits, signs, points, exponents, blanks and the delimiter are
+    tried, so a word such as "true" can never pass for a number; a row JSON
+    does not accept (".5", "1.", "+1", an empty cell) returns None and numpy's
+    reader and the careful path take the table as before. An integer "-0"
+    reads as 0 (JSON integers have no sign of zero).
+    """
+    if delimiter is None or len(delimiter) != 1:
+        return None  # cells split by runs of blanks are numpy's to read
+    separator = delimiter.encode()
+    matrix = np.empty((n_rows, n_columns))
+    count = 0
+    for line in lines:
+        if count == n_rows:
+            break
+        text = line if separator == b"," else line.replace(separator, b",")
+        if text.translate(None, _PLAIN_NUMBER_BYTES):
+            return None
+        try:
+            row = orjson.loads(b"[" + text + b"]")
+        except orjson.JSONDecodeError:
+            return None
+        if len(row) != n_columns:
+            return None
+        matrix[count] = row
+        count += 1
+    return matrix if count == n_rows else None
+
+
+# Bytes a row of plain numbers is made of (JSON's blanks included); the delimiter is a comma by then.
+_PLAIN_NUMBER_BYTES = b"0123456789+-.eE, \t\r\n"
 
 
 def _data_lines(handle: IO[bytes], wanted: set[int], decimal: str) -> Iterator[bytes]:
