@@ -59,12 +59,13 @@ def check(
         rows = result.rows()
         if out is not None:
             files: dict[Path, str | bytes] = {out / "check.csv": _check_csv(rows)}
-            from ..report.residual_figure import residual_png
+            from ..report.residual_figure import residual_pngs
 
             flagged = [i for i, row in enumerate(rows) if row["interferent"]]
-            for done, i in enumerate(flagged, start=1):
-                files[out / f"residual-{_safe(rows[i]['scan'])}.png"] = residual_png(result.mixture, i, reference.noise)
-                progress("drawing residual plots", done, len(flagged))
+            images = residual_pngs(
+                result.mixture, flagged, reference.noise, progress=lambda done, total: progress("drawing residual plots", done, total)
+            )
+            files.update((out / f"residual-{_safe(rows[i]['scan'])}.png", image) for i, image in zip(flagged, images, strict=True))
             progress("writing files", 0, 0)
             write_all(files, force=force)
     typer.echo(json.dumps(rows, indent=1) if as_json else _table(result, rows))
