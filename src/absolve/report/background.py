@@ -19,14 +19,13 @@ again: a script that uses this must keep its work under
 
 from __future__ import annotations
 
-import multiprocessing
-import signal
-from concurrent.futures import Future, ProcessPoolExecutor
+from concurrent.futures import Future
 from concurrent.futures.process import BrokenProcessPool
 from typing import TypeAlias
 
 from ..library import ReferenceLibrary
 from ..quantify import MixtureResult
+from ._workers import spawned_pool
 from .batch import BatchNumbers, ReportBatch
 from .figures import FigureFormat, draw_figure, scan_figure_key
 
@@ -44,8 +43,6 @@ _worker_library: ReferenceLibrary | None = None
 def _start_worker(library: ReferenceLibrary) -> None:
     global _worker_library
     _worker_library = library
-    # Ctrl-C is the main process's to handle: it stops the worker by shutting the pool down.
-    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 def _draw_in_worker(key: str, place: str, data: MixtureResult | BatchNumbers | None, file_format: FigureFormat | None) -> _Drawn:
@@ -91,8 +88,7 @@ class BackgroundFigures:
     def __init__(self, library: ReferenceLibrary, file_format: FigureFormat | None) -> None:
         self.library = library
         self.file_format = file_format
-        # "spawn": a fresh interpreter, safe whatever threads this process runs (BLAS, the writer).
-        self._pool = ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("spawn"), initializer=_start_worker, initargs=(library,))
+        self._pool = spawned_pool(1, _start_worker, (library,))
         self._futures: dict[str, Future[_Drawn]] = {
             "library": self._pool.submit(_draw_in_worker, "library", "library", None, file_format)
         }

@@ -7,11 +7,8 @@ process, in worker processes when there are many (:func:`residual_pngs`).
 from __future__ import annotations
 
 import io
-import multiprocessing
 import os
-import signal
 from collections.abc import Callable, Sequence
-from concurrent.futures import ProcessPoolExecutor
 from concurrent.futures.process import BrokenProcessPool
 from typing import TYPE_CHECKING
 
@@ -19,6 +16,7 @@ import numpy as np
 
 from ..library import NoiseModel
 from ..quantify import MixtureResult
+from ._workers import spawned_pool
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
@@ -35,7 +33,7 @@ def plot_residual(result: MixtureResult, index: int, noise: NoiseModel | None = 
     Returns the axes (a new figure's when ``ax`` is None).
     """
     if ax is None:
-        ax = plot_residual_axes()
+        ax = _residual_axes()
     grid = result.wavelengths
     residual = result.residuals[index]
     if noise is not None:
@@ -55,7 +53,7 @@ def plot_residual(result: MixtureResult, index: int, noise: NoiseModel | None = 
     return ax
 
 
-def plot_residual_axes() -> Axes:
+def _residual_axes() -> Axes:
     """The empty axes of a residual figure, on a new figure."""
     from matplotlib.figure import Figure
 
@@ -72,7 +70,7 @@ class _Plotter:
     def __init__(self) -> None:
         from matplotlib.backends.backend_agg import FigureCanvasAgg
 
-        self.ax = plot_residual_axes()
+        self.ax = _residual_axes()
         FigureCanvasAgg(self.ax.figure)
 
     def png(self, result: MixtureResult, index: int, noise: NoiseModel | None) -> bytes:
@@ -90,15 +88,15 @@ class _Plotter:
         return buffer.getvalue()
 
 
-# A worker process's own plotter, made when it draws its first plot.
+# A worker process's own plotter, made when the worker starts.
 _worker_plotter: list[_Plotter] = []
 
 
+def _start_worker() -> None:
+    _worker_plotter.append(_Plotter())
+
+
 def _draw_in_worker(result: MixtureResult, noise: NoiseModel | None) -> list[bytes]:
-    if not _worker_plotter:
-        # Ctrl-C is the main process's to handle: it stops the workers by shutting the pool down.
-        signal.signal(signal.SIGINT, signal.SIG_IGN)
-        _worker_plotter.append(_Plotter())
     return [_worker_plotter[0].png(result, i, noise) for i in range(result.n_scans)]
 
 
@@ -110,8 +108,9 @@ def residual_pngs(
     Many plots are drawn in worker processes, one per core (at most
     :data:`MAX_WORKERS`), each handed ``_PLOTS_PER_TASK`` scans at a time; a
     few, or a machine with one core, are drawn here. The workers are fresh
-    interpreters ("spawn"): a script that calls this must keep its work under
-    ``if __name__ == "__main__":``. If a worker dies, the plots are drawn here.
+    interpreters (:func:`~absolve.report._workers.spawned_pool`): a script that
+    calls this must keep its work under ``if __name__ == "__main__":``. If a
+    worker dies, the plots are drawn here.
     ``progress(done, total)`` hears of every plot.
     """
     total = len(indices)
@@ -135,7 +134,7 @@ def _drawn_in_workers(
 ) -> list[bytes]:
     tasks = [indices[start : start + _PLOTS_PER_TASK] for start in range(0, len(indices), _PLOTS_PER_TASK)]
     images: list[bytes] = []
-    pool = ProcessPoolExecutor(workers, mp_context=multiprocessing.get_context("spawn"))
+    pool = spawned_pool(workers, _start_worker)
     try:
         # Each task gets only its scans (their spectra and numbers), not the whole batch.
         futures = [pool.submit(_draw_in_worker, result.take(task), noise) for task in tasks]
